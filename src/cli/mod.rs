@@ -1,0 +1,45 @@
+//! Argument definitions (clap) and dispatch; one file per command.
+
+mod compress;
+mod inspect;
+mod train;
+
+use std::path::PathBuf;
+
+use clap::{Parser, Subcommand};
+
+/// Kiln: a learned image codec for single-domain image archives.
+#[derive(Debug, Parser)]
+#[command(name = "kiln", version, about)]
+pub struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Compress an image into a .kiln container.
+    Compress(compress::CompressArgs),
+    /// Decompress a .kiln container to PNG.
+    Decompress(compress::DecompressArgs),
+    /// Describe a container or a model file (`default` for the embedded model).
+    Inspect {
+        /// A .kiln container, a model file, or `default`.
+        file: PathBuf,
+        /// Print JSON instead of text.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Train, resume or fine-tune a model on folders of images.
+    Train(Box<train::TrainArgs>),
+}
+
+/// Runs the parsed command.
+pub fn run(cli: Cli) -> anyhow::Result<()> {
+    match cli.command {
+        Command::Compress(a) => compress::compress(a),
+        Command::Decompress(a) => compress::decompress(a),
+        Command::Inspect { file, json } => inspect::inspect(&file, json),
+        Command::Train(a) => train::train(*a),
+    }
+}

@@ -1,0 +1,104 @@
+//! `kiln train`.
+
+use std::path::PathBuf;
+
+use clap::Args;
+use kiln::ModelConfig;
+use kiln::train::{Init, TrainOptions};
+
+#[derive(Debug, Args)]
+pub struct TrainArgs {
+    /// Folders of training images (searched recursively).
+    #[arg(long, num_args = 1.., required = true)]
+    images: Vec<PathBuf>,
+    /// Where to write the exported model.
+    #[arg(long)]
+    out: PathBuf,
+    /// Fine-tune from this model file, or `default` for the embedded model.
+    #[arg(long)]
+    init: Option<PathBuf>,
+    /// Configuration of a new model: `default`, `tiny`, or a JSON file.
+    #[arg(long, default_value = "default")]
+    config: String,
+    /// Total optimizer steps.
+    #[arg(long, default_value_t = 10_000)]
+    steps: u64,
+    /// Crops per step.
+    #[arg(long, default_value_t = 8)]
+    batch: usize,
+    /// Crop side in pixels (multiple of 64).
+    #[arg(long, default_value_t = 128)]
+    patch: usize,
+    /// Learning rate.
+    #[arg(long, default_value_t = 1e-4)]
+    lr: f64,
+    /// Resume from a checkpoint.
+    #[arg(long)]
+    resume: Option<PathBuf>,
+    /// Seed for initialisation, crops and noise.
+    #[arg(long, default_value_t = 1)]
+    seed: u64,
+    /// Folder of validation images.
+    #[arg(long)]
+    val: Option<PathBuf>,
+    /// Checkpoint path (default: OUT with extension .ckpt).
+    #[arg(long)]
+    checkpoint: Option<PathBuf>,
+    /// Steps between checkpoints.
+    #[arg(long, default_value_t = 100)]
+    checkpoint_every: u64,
+    /// Steps between validations (0: only at the end).
+    #[arg(long, default_value_t = 500)]
+    val_every: u64,
+    /// Global gradient-norm clip.
+    #[arg(long, default_value_t = 5.0)]
+    clip: f64,
+    /// Fraction of the run after which the learning rate drops tenfold.
+    #[arg(long, default_value_t = 0.8)]
+    decay_from: f64,
+    /// Print plain log lines instead of a progress bar.
+    #[arg(long)]
+    log: bool,
+}
+
+fn parse_config(s: &str) -> anyhow::Result<ModelConfig> {
+    Ok(match s {
+        "default" => ModelConfig::default(),
+        "tiny" => ModelConfig::tiny(),
+        path => {
+            let text = std::fs::read_to_string(path).map_err(|e| kiln::KilnError::io(path, e))?;
+            serde_json::from_str(&text).map_err(|e| anyhow::anyhow!("{path}: bad model config: {e}"))?
+        }
+    })
+}
+
+pub fn train(a: TrainArgs) -> anyhow::Result<()> {
+    let init = match a.init {
+        Some(p) if p.as_os_str() == "default" => Init::FineTune(None),
+        Some(p) => Init::FineTune(Some(p)),
+        None => Init::Fresh(parse_config(&a.config)?),
+    };
+    let opts = TrainOptions {
+        images: a.images,
+        checkpoint: a.checkpoint.unwrap_or_else(|| a.out.with_extension("ckpt")),
+        out: a.out,
+        init,
+        steps: a.steps,
+        batch: a.batch,
+        patch: a.patch,
+        lr: a.lr,
+        resume: a.resume,
+        seed: a.seed,
+        val: a.val,
+        checkpoint_every: a.checkpoint_every.max(1),
+        val_every: a.val_every,
+        clip: a.clip,
+        decay_from: a.decay_from,
+        progress: !a.log,
+    };
+    let report = kiln::train::train(&opts)?;
+    if report.interrupted {
+        std::process::exit(130);
+    }
+    Ok(())
+}

@@ -1,0 +1,265 @@
+//! Compress and decompress: image → container bytes → image.
+//!
+//! ```no_run
+//! use kiln::{Codec, ModelFile, Picture, AlphaPolicy};
+//! let codec = Codec::new(ModelFile::load(None)?)?;
+//! let pic = Picture::open("photo.png".as_ref(), AlphaPolicy::Refuse)?;
+//! let coded = codec.encode(&pic, 60.0)?;
+//! let back = codec.decode(&coded.bytes)?;
+//! assert_eq!((back.width, back.height), (pic.width, pic.height));
+//! # Ok::<(), kiln::KilnError>(())
+//! ```
+
+use candle_core::{Device, Module, Tensor};
+use serde::Serialize;
+
+use crate::container::{self, Header, TileRecord, TileStreams};
+use crate::entropy::coder::{SymbolDecoder, SymbolEncoder, TableSet};
+use crate::entropy::gaussian::scale_index;
+use crate::error::{KilnError, Result};
+use crate::image_io::Picture;
+use crate::kernels::{HyperSynthesisFixed, PriorParameters, SimdMode};
+use crate::model::config::{HYPER_STRIDE, LATENT_STRIDE, check_quality};
+use crate::model::gain::GainVectors;
+use crate::model::{ModelFile, hex_prefix};
+
+/// A model ready to code: its network, fixed-order hyper-synthesis and coding tables.
+#[derive(Debug)]
+pub struct Codec {
+    file: ModelFile,
+    hyper_fixed: HyperSynthesisFixed,
+    gaussian: TableSet,
+    hyper: TableSet,
+    simd: SimdMode,
+}
+
+/// A compressed image and what it cost.
+#[derive(Debug, Clone)]
+pub struct Encoded {
+    /// The whole container file.
+    pub bytes: Vec<u8>,
+    /// Model information content of the coded symbols, `−Σ log2 p`.
+    pub ideal_bits: f64,
+    /// Bits of the entropy-coded streams (container header and checksums excluded).
+    pub coded_bits: u64,
+}
+
+/// The `--stats` report of one compression.
+#[derive(Debug, Clone, Serialize)]
+pub struct EncodeStats {
+    /// Container size in bytes.
+    pub bytes: usize,
+    /// Bits per pixel of the whole container.
+    pub bpp: f64,
+    /// Model information content of the coded symbols.
+    pub ideal_bits: f64,
+    /// Bits of the entropy-coded streams.
+    pub coded_bits: u64,
+    /// Header, tile table and checksums in bytes.
+    pub overhead_bytes: usize,
+    /// Image width.
+    pub width: u32,
+    /// Image height.
+    pub height: u32,
+    /// Quality used.
+    pub quality: f32,
+}
+
+impl Encoded {
+    /// The report for `--stats`.
+    pub fn stats(&self, width: u32, height: u32, quality: f32) -> EncodeStats {
+        EncodeStats {
+            bytes: self.bytes.len(),
+            bpp: self.bytes.len() as f64 * 8.0 / (width as f64 * height as f64),
+            ideal_bits: self.ideal_bits,
+            coded_bits: self.coded_bits,
+            overhead_bytes: self.bytes.len() - (self.coded_bits / 8) as usize,
+            width,
+            height,
+            quality,
+        }
+    }
+}
+
+struct PaddedTile {
+    tensor: Tensor,
+    padded_w: usize,
+    padded_h: usize,
+}
+
+/// Cuts tile `rect` out of `pic`, as RGB in `[0, 1]`, edge-padded to multiples of 64.
+fn tile_tensor(pic: &Picture, rect: container::Rect) -> Result<PaddedTile> {
+    let (x0, y0, w, h) = (rect.0 as usize, rect.1 as usize, rect.2 as usize, rect.3 as usize);
+    let pw = w.div_ceil(HYPER_STRIDE) * HYPER_STRIDE;
+    let ph = h.div_ceil(HYPER_STRIDE) * HYPER_STRIDE;
+    let c = pic.channels as usize;
+    let stride = pic.width as usize * c;
+    let mut data = vec![0f32; 3 * pw * ph];
+    for y in 0..ph {
+        let sy = y0 + y.min(h - 1);
+        for x in 0..pw {
+            let sx = x0 + x.min(w - 1);
+            for ch in 0..3 {
+                let v = pic.data[sy * stride + sx * c + if c == 3 { ch } else { 0 }];
+                data[(ch * ph + y) * pw + x] = v as f32 / 255.0;
+            }
+        }
+    }
+    Ok(PaddedTile { tensor: Tensor::from_vec(data, (1, 3, ph, pw), &Device::Cpu)?, padded_w: pw, padded_h: ph })
+}
+
+fn scale_channels(t: &Tensor, gains: &[f32]) -> Result<Tensor> {
+    let g = Tensor::from_slice(gains, (1, gains.len(), 1, 1), &Device::Cpu)?;
+    Ok(t.broadcast_mul(&g)?)
+}
+
+impl Codec {
+    /// Prepares a model for coding (builds the coding models from its integer tables).
+    pub fn new(file: ModelFile) -> Result<Self> {
+        let hyper_fixed = file.model.hyper_synthesis_fixed()?;
+        let gaussian = TableSet::new(file.tables.gaussian.clone())?;
+        let hyper = TableSet::new(file.tables.hyper.clone())?;
+        Ok(Codec { file, hyper_fixed, gaussian, hyper, simd: SimdMode::from_env() })
+    }
+
+    /// The model file in use.
+    pub fn model_file(&self) -> &ModelFile {
+        &self.file
+    }
+
+    fn gains(&self, quality: f32) -> Result<GainVectors> {
+        let (i, l) = self.file.model.config.anchor_position(quality)?;
+        Ok(self.file.model.gains.at(i, l)?)
+    }
+
+    /// Compresses `pic` at `quality` (1–100) into a container.
+    pub fn encode(&self, pic: &Picture, quality: f32) -> Result<Encoded> {
+        check_quality(quality)?;
+        container::check_geometry(pic.width, pic.height, pic.channels, 8)?;
+        let gains = self.gains(quality)?;
+        let (tw, th) = container::choose_tile_size(pic.width, pic.height);
+        let mut records = Vec::new();
+        let mut streams = Vec::new();
+        let mut ideal_bits = 0.0;
+        for rect in container::tile_grid(pic.width, pic.height, tw, th) {
+            let (rec, s, bits) = self.encode_tile(pic, rect, &gains)?;
+            records.push(rec);
+            streams.push(s);
+            ideal_bits += bits;
+        }
+        let coded_bits = streams.iter().map(|s: &TileStreams| 32 * (s.hyper.len() + s.latent.len()) as u64).sum();
+        let header = Header {
+            width: pic.width,
+            height: pic.height,
+            channels: pic.channels,
+            bit_depth: 8,
+            model_fingerprint: self.file.fingerprint,
+            quality,
+            tile_width: tw,
+            tile_height: th,
+            tiles: records,
+        };
+        Ok(Encoded { bytes: container::write(&header, &streams)?, ideal_bits, coded_bits })
+    }
+
+    fn encode_tile(&self, pic: &Picture, rect: container::Rect, gains: &GainVectors) -> Result<(TileRecord, TileStreams, f64)> {
+        let model = &self.file.model;
+        let tile = tile_tensor(pic, rect)?;
+        let y = scale_channels(&model.g_a.forward(&tile.tensor)?, &gains.y)?;
+        let z = scale_channels(&model.h_a.forward(&y)?, &gains.z)?;
+        let (_, nz, hz, wz) = z.dims4()?;
+        let z_hat: Vec<i32> = z.flatten_all()?.to_vec1::<f32>()?.iter().map(|v| v.round() as i32).collect();
+        let mut enc_z = SymbolEncoder::new(&self.hyper);
+        for (i, &v) in z_hat.iter().enumerate() {
+            enc_z.push(i / (hz * wz), v);
+        }
+        let prior = self.prior(&z_hat, hz, wz, gains);
+        let y_vals = y.flatten_all()?.to_vec1::<f32>()?;
+        let mut enc_y = SymbolEncoder::new(&self.gaussian);
+        for (i, &v) in y_vals.iter().enumerate() {
+            let k = scale_index(prior.log_scales[i], &self.file.tables.log_scale_thresholds);
+            enc_y.push(k, (v - prior.means[i]).round() as i32);
+        }
+        let (_, m, hy, wy) = y.dims4()?;
+        debug_assert_eq!((hy, wy), (tile.padded_h / LATENT_STRIDE, tile.padded_w / LATENT_STRIDE));
+        let ideal = enc_z.ideal_bits() + enc_y.ideal_bits();
+        let record = TileRecord {
+            latent: [m as u16, hy as u16, wy as u16],
+            hyper: [nz as u16, hz as u16, wz as u16],
+            hyper_bytes: 0,
+            latent_bytes: 0,
+        };
+        Ok((record, TileStreams { hyper: enc_z.finish(), latent: enc_y.finish() }, ideal))
+    }
+
+    fn prior(&self, z_hat: &[i32], hz: usize, wz: usize, gains: &GainVectors) -> PriorParameters {
+        let plane = hz * wz;
+        let z: Vec<f32> = z_hat.iter().enumerate().map(|(i, &v)| v as f32 * gains.z_inv[i / plane]).collect();
+        self.hyper_fixed.forward(&z, hz, wz, self.simd)
+    }
+
+    /// Decompresses a container made with this codec's model.
+    pub fn decode(&self, bytes: &[u8]) -> Result<Picture> {
+        let (header, streams) = container::read(bytes)?;
+        if header.model_fingerprint != self.file.fingerprint {
+            return Err(KilnError::ModelMismatch {
+                expected: hex_prefix(&header.model_fingerprint, 8),
+                given: hex_prefix(&self.file.fingerprint, 8),
+            });
+        }
+        let gains = self.gains(header.quality)?;
+        let (w, h, c) = (header.width as usize, header.height as usize, header.channels as usize);
+        let mut data = vec![0u8; w * h * c];
+        let rects = container::tile_grid(header.width, header.height, header.tile_width, header.tile_height);
+        for ((rect, record), s) in rects.into_iter().zip(&header.tiles).zip(streams) {
+            let rgb = self.decode_tile(rect, record, s, &gains)?;
+            let (x0, y0, tw, th) = (rect.0 as usize, rect.1 as usize, rect.2 as usize, rect.3 as usize);
+            for y in 0..th {
+                for x in 0..tw {
+                    let px = &rgb[(y * tw + x) * 3..(y * tw + x) * 3 + 3];
+                    let dst = ((y0 + y) * w + x0 + x) * c;
+                    if c == 3 {
+                        data[dst..dst + 3].copy_from_slice(px);
+                    } else {
+                        data[dst] = ((px[0] as u16 + px[1] as u16 + px[2] as u16 + 1) / 3) as u8;
+                    }
+                }
+            }
+        }
+        Ok(Picture { width: header.width, height: header.height, channels: header.channels, data })
+    }
+
+    fn decode_tile(&self, rect: container::Rect, record: &TileRecord, s: TileStreams, gains: &GainVectors) -> Result<Vec<u8>> {
+        let cfg = &self.file.model.config;
+        let (tw, th) = (rect.2 as usize, rect.3 as usize);
+        let (hz, wz) = (th.div_ceil(HYPER_STRIDE), tw.div_ceil(HYPER_STRIDE));
+        let (hy, wy) = (hz * 4, wz * 4);
+        if record.hyper != [cfg.nz as u16, hz as u16, wz as u16] || record.latent != [cfg.m as u16, hy as u16, wy as u16] {
+            return Err(KilnError::Corrupt(format!(
+                "tile shapes {:?}/{:?} do not match a {tw}×{th} tile for this model",
+                record.latent, record.hyper
+            )));
+        }
+        let mut dec_z = SymbolDecoder::new(&self.hyper, s.hyper)?;
+        let mut z_hat = Vec::with_capacity(cfg.nz * hz * wz);
+        for i in 0..cfg.nz * hz * wz {
+            z_hat.push(dec_z.pop(i / (hz * wz))?);
+        }
+        dec_z.finish()?;
+        let prior = self.prior(&z_hat, hz, wz, gains);
+        let mut dec_y = SymbolDecoder::new(&self.gaussian, s.latent)?;
+        let plane = hy * wy;
+        let mut y_hat = Vec::with_capacity(cfg.m * plane);
+        for i in 0..cfg.m * plane {
+            let k = scale_index(prior.log_scales[i], &self.file.tables.log_scale_thresholds);
+            let q = dec_y.pop(k)?;
+            y_hat.push((q as f32 + prior.means[i]) * gains.y_inv[i / plane]);
+        }
+        dec_y.finish()?;
+        let y = Tensor::from_vec(y_hat, (1, cfg.m, hy, wy), &Device::Cpu)?;
+        let x = self.file.model.g_s.forward(&y)?; // (1, 3, 16hy, 16wy)
+        let x = (x.narrow(2, 0, th)?.narrow(3, 0, tw)? * 255.0)?.round()?.clamp(0.0, 255.0)?;
+        let x = x.squeeze(0)?.permute((1, 2, 0))?.flatten_all()?.to_vec1::<f32>()?;
+        Ok(x.into_iter().map(|v| v as u8).collect())
+    }
+}

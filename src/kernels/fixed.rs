@@ -1,0 +1,153 @@
+//! Fixed-order arithmetic for the decoder's table-selecting path.
+//!
+//! Every output element is `bias + Σ w·x` summed in one fixed order — taps row by row, then input
+//! channels — with separate `f32` multiplies and adds (Rust never fuses them on its own). That
+//! order does not depend on the thread count or on whether the loop over output channels is
+//! vectorized, so the result is bit-identical on every IEEE-754 machine. Tensors are HWC
+//! (channels innermost), single image.
+//!
+//! # Requirements for correctness
+//! - never reorder the sums here or call into BLAS/gemm;
+//! - [`SimdMode::Scalar`] and [`SimdMode::Vectorized`] must stay bit-identical (a test checks);
+//! - only `+`, `*` and `max` are used: no `exp`/`log` whose last bit varies between libraries.
+
+use rayon::prelude::*;
+
+/// How the loop over output channels runs. Both give identical bits.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum SimdMode {
+    /// Output channels as the innermost loop: the compiler vectorizes it.
+    Vectorized,
+    /// One output channel at a time: plain scalar code (the reference).
+    Scalar,
+}
+
+impl SimdMode {
+    /// `Scalar` when the environment variable `KILN_FIXED_SCALAR` is set, else `Vectorized`.
+    pub fn from_env() -> Self {
+        if std::env::var_os("KILN_FIXED_SCALAR").is_some() { SimdMode::Scalar } else { SimdMode::Vectorized }
+    }
+}
+
+/// A stride-1, zero-padded square convolution with fixed summation order.
+#[derive(Debug, Clone)]
+pub struct FixedConv {
+    cin: usize,
+    cout: usize,
+    k: usize,
+    /// Weights as `[ky][kx][ci][co]`.
+    w: Vec<f32>,
+    b: Vec<f32>,
+}
+
+impl FixedConv {
+    /// Builds from weights in the usual `(cout, cin, k, k)` layout and a bias of length `cout`.
+    pub fn new(weight_oikk: &[f32], bias: &[f32], cout: usize, cin: usize, k: usize) -> Self {
+        assert_eq!(weight_oikk.len(), cout * cin * k * k, "weight size");
+        assert_eq!(bias.len(), cout, "bias size");
+        let mut w = vec![0.0; weight_oikk.len()];
+        for co in 0..cout {
+            for ci in 0..cin {
+                for ky in 0..k {
+                    for kx in 0..k {
+                        w[((ky * k + kx) * cin + ci) * cout + co] = weight_oikk[((co * cin + ci) * k + ky) * k + kx];
+                    }
+                }
+            }
+        }
+        FixedConv { cin, cout, k, w, b: bias.to_vec() }
+    }
+
+    /// Output channels.
+    pub fn out_channels(&self) -> usize {
+        self.cout
+    }
+
+    /// Multiply-adds per output position.
+    pub fn macs_per_output(&self) -> usize {
+        self.cin * self.cout * self.k * self.k
+    }
+
+    /// Applies the convolution to `x` (`h × w × cin`, HWC), giving `h × w × cout`.
+    pub fn forward(&self, x: &[f32], h: usize, w: usize, mode: SimdMode) -> Vec<f32> {
+        assert_eq!(x.len(), h * w * self.cin, "input size");
+        let mut out = vec![0.0f32; h * w * self.cout];
+        let row_len = w * self.cout;
+        if row_len == 0 {
+            return out;
+        }
+        out.par_chunks_mut(row_len).enumerate().for_each(|(oy, row)| {
+            for ox in 0..w {
+                let acc = &mut row[ox * self.cout..(ox + 1) * self.cout];
+                match mode {
+                    SimdMode::Vectorized => self.pixel_vectorized(x, h, w, oy, ox, acc),
+                    SimdMode::Scalar => self.pixel_scalar(x, h, w, oy, ox, acc),
+                }
+            }
+        });
+        out
+    }
+
+    fn taps(&self, h: usize, w: usize, oy: usize, ox: usize) -> impl Iterator<Item = (usize, usize)> + '_ {
+        let r = self.k / 2;
+        (0..self.k).flat_map(move |ky| (0..self.k).map(move |kx| (ky, kx))).filter_map(move |(ky, kx)| {
+            let iy = (oy + ky).checked_sub(r)?;
+            let ix = (ox + kx).checked_sub(r)?;
+            (iy < h && ix < w).then_some((ky * self.k + kx, iy * w + ix))
+        })
+    }
+
+    fn pixel_vectorized(&self, x: &[f32], h: usize, w: usize, oy: usize, ox: usize, acc: &mut [f32]) {
+        acc.copy_from_slice(&self.b);
+        for (tap, pos) in self.taps(h, w, oy, ox) {
+            let xs = &x[pos * self.cin..(pos + 1) * self.cin];
+            for (ci, &xv) in xs.iter().enumerate() {
+                let wrow = &self.w[(tap * self.cin + ci) * self.cout..(tap * self.cin + ci + 1) * self.cout];
+                for (a, &wv) in acc.iter_mut().zip(wrow) {
+                    *a += xv * wv;
+                }
+            }
+        }
+    }
+
+    fn pixel_scalar(&self, x: &[f32], h: usize, w: usize, oy: usize, ox: usize, acc: &mut [f32]) {
+        let taps: Vec<(usize, usize)> = self.taps(h, w, oy, ox).collect();
+        for (co, a) in acc.iter_mut().enumerate() {
+            let mut s = self.b[co];
+            for &(tap, pos) in &taps {
+                for ci in 0..self.cin {
+                    s += x[pos * self.cin + ci] * self.w[(tap * self.cin + ci) * self.cout + co];
+                }
+            }
+            *a = s;
+        }
+    }
+}
+
+/// `max(x, 0)` in place.
+pub fn relu_in_place(x: &mut [f32]) {
+    for v in x {
+        *v = v.max(0.0);
+    }
+}
+
+/// HWC depth-to-space by 2: channel `4c + 2dy + dx` of `(y, x)` goes to channel `c` of
+/// `(2y + dy, 2x + dx)`. Returns the new buffer (`2h × 2w × c/4`).
+pub fn depth_to_space_hwc(x: &[f32], h: usize, w: usize, c4: usize) -> Vec<f32> {
+    let c = c4 / 4;
+    let mut out = vec![0.0; x.len()];
+    for y in 0..h {
+        for xx in 0..w {
+            for ch in 0..c {
+                for dy in 0..2 {
+                    for dx in 0..2 {
+                        let src = (y * w + xx) * c4 + 4 * ch + 2 * dy + dx;
+                        let dst = ((2 * y + dy) * (2 * w) + 2 * xx + dx) * c + ch;
+                        out[dst] = x[src];
+                    }
+                }
+            }
+        }
+    }
+    out
+}

@@ -1,0 +1,5 @@
+//! Image quality metrics.
+
+pub mod psnr;
+
+pub use psnr::{mse, psnr};

@@ -1,0 +1,158 @@
+//! Model hyper-parameters and the quality → trade-off mapping.
+//!
+//! A quality `q` in `1.0..=100.0` maps to a continuous position on the model's trade-off anchors:
+//! `t = (q − 1) / 99 · (L − 1)` for `L` anchors. Anchor `i` was trained with rate–distortion
+//! weight `λ_i` (loss = bits per pixel + λ · MSE on the 0–255 scale). Between anchors the gain
+//! vectors are interpolated exponentially (`g = g_i^(1−l) · g_{i+1}^l`, `l = t − ⌊t⌋`) and so is
+//! the effective λ: quality 1 is the smallest file, quality 100 the best fidelity.
+
+use serde::{Deserialize, Serialize};
+
+use crate::error::{KilnError, Result};
+
+/// Channel counts, kernel sizes and trade-off anchors of a model.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelConfig {
+    /// Hidden channels of the analysis and synthesis transforms.
+    pub n: usize,
+    /// Latent channels (the coded representation `y`).
+    pub m: usize,
+    /// Hyper-latent channels (`z`).
+    pub nz: usize,
+    /// Hidden channels of the hyper-synthesis.
+    pub hyper_hidden: usize,
+    /// Kernel size of the stride-2 analysis convolutions.
+    pub analysis_kernel: usize,
+    /// Kernel size of the sub-pixel synthesis convolutions.
+    pub synthesis_kernel: usize,
+    /// Rate–distortion weights λ of the trade-off anchors, increasing (loss = bpp + λ·MSE₂₅₅).
+    pub lambdas: Vec<f64>,
+}
+
+impl Default for ModelConfig {
+    /// The shipped configuration.
+    fn default() -> Self {
+        ModelConfig {
+            n: 64,
+            m: 96,
+            nz: 64,
+            hyper_hidden: 64,
+            analysis_kernel: 5,
+            synthesis_kernel: 3,
+            lambdas: vec![0.0025, 0.005, 0.01, 0.02, 0.04, 0.08],
+        }
+    }
+}
+
+/// Total downsampling factor of the analysis transform (four stride-2 layers).
+pub const LATENT_STRIDE: usize = 16;
+/// Total downsampling factor of analysis plus hyper-analysis (two more stride-2 layers).
+pub const HYPER_STRIDE: usize = 64;
+
+/// Lowest accepted quality.
+pub const QUALITY_MIN: f32 = 1.0;
+/// Highest accepted quality.
+pub const QUALITY_MAX: f32 = 100.0;
+
+impl ModelConfig {
+    /// A tiny configuration for tests: fast to run, same code paths as the shipped one.
+    pub fn tiny() -> Self {
+        ModelConfig {
+            n: 8,
+            m: 12,
+            nz: 8,
+            hyper_hidden: 8,
+            analysis_kernel: 5,
+            synthesis_kernel: 3,
+            lambdas: vec![0.005, 0.02, 0.08],
+        }
+    }
+
+    /// Checks that the configuration can be built.
+    pub fn validate(&self) -> Result<()> {
+        let bad = |m: &str| Err(KilnError::BadModel(format!("config: {m}")));
+        if self.n == 0 || self.m == 0 || self.nz == 0 || self.hyper_hidden == 0 {
+            return bad("channel counts must be positive");
+        }
+        if self.n > 1024 || self.m > 1024 || self.nz > 1024 || self.hyper_hidden > 1024 {
+            return bad("channel counts above 1024 are not supported");
+        }
+        if self.analysis_kernel % 2 == 0 || self.synthesis_kernel % 2 == 0 {
+            return bad("kernel sizes must be odd");
+        }
+        if self.analysis_kernel > 9 || self.synthesis_kernel > 9 {
+            return bad("kernel sizes above 9 are not supported");
+        }
+        if self.lambdas.len() < 2 || self.lambdas.len() > 32 {
+            return bad("between 2 and 32 trade-off anchors are needed");
+        }
+        if !self.lambdas.windows(2).all(|w| w[0] > 0.0 && w[1] > w[0]) {
+            return bad("lambdas must be positive and increasing");
+        }
+        Ok(())
+    }
+
+    /// Number of trade-off anchors.
+    pub fn anchors(&self) -> usize {
+        self.lambdas.len()
+    }
+
+    /// Position of a quality on the anchors: `(index i, weight l)` with the result between
+    /// anchor `i` (weight `1 − l`) and anchor `i + 1` (weight `l`).
+    pub fn anchor_position(&self, quality: f32) -> Result<(usize, f32)> {
+        check_quality(quality)?;
+        let t = (quality - QUALITY_MIN) / (QUALITY_MAX - QUALITY_MIN) * (self.anchors() - 1) as f32;
+        let i = (t.floor() as usize).min(self.anchors() - 2);
+        Ok((i, t - i as f32))
+    }
+
+    /// The effective λ of a quality (log-linear between anchors).
+    pub fn lambda_for_quality(&self, quality: f32) -> Result<f64> {
+        let (i, l) = self.anchor_position(quality)?;
+        let (a, b) = (self.lambdas[i].ln(), self.lambdas[i + 1].ln());
+        Ok((a * (1.0 - l as f64) + b * l as f64).exp())
+    }
+
+    /// The quality at which anchor `i` sits exactly.
+    pub fn anchor_quality(&self, i: usize) -> f32 {
+        QUALITY_MIN + (QUALITY_MAX - QUALITY_MIN) * i as f32 / (self.anchors() - 1) as f32
+    }
+}
+
+/// Rejects qualities outside `1..=100` and non-finite values.
+pub fn check_quality(quality: f32) -> Result<()> {
+    if !(QUALITY_MIN..=QUALITY_MAX).contains(&quality) {
+        return Err(KilnError::InvalidArgument(format!(
+            "quality {quality} is outside 1..=100\nhint: 1 gives the smallest file, 100 the best fidelity"
+        )));
+    }
+    Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn quality_extremes_hit_first_and_last_anchor() {
+        let c = ModelConfig::default();
+        assert_eq!(c.anchor_position(1.0).unwrap(), (0, 0.0));
+        let (i, l) = c.anchor_position(100.0).unwrap();
+        assert_eq!(i, c.anchors() - 2);
+        assert!((l - 1.0).abs() < 1e-6);
+        assert!((c.lambda_for_quality(100.0).unwrap() - 0.08).abs() < 1e-9);
+        assert!(c.anchor_position(0.5).is_err());
+        assert!(c.anchor_position(f32::NAN).is_err());
+    }
+
+    #[test]
+    fn lambda_increases_with_quality() {
+        let c = ModelConfig::default();
+        let mut last = 0.0;
+        for q in 1..=100 {
+            let l = c.lambda_for_quality(q as f32).unwrap();
+            assert!(l > last);
+            last = l;
+        }
+    }
+}

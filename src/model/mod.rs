@@ -1,0 +1,318 @@
+//! The learned transforms (candle), and model files.
+//!
+//! A model is `g_a`, `h_a`, `g_s`, `h_s`, the gain units and the hyper-latent density, built
+//! from a [`ModelConfig`]. A *model file* is safetensors holding every weight under its module
+//! path (`g_a.0.weight`, …), the integer entropy tables (`entropy.*`) and metadata
+//! (`kiln.config`, `kiln.anchors`, `kiln.training`). A model's fingerprint is the SHA-256 of the
+//! file's bytes; containers record it.
+
+pub mod analysis;
+pub mod config;
+pub mod density;
+pub mod gain;
+pub mod gdn;
+pub mod init;
+pub mod layers;
+pub mod synthesis;
+
+use std::collections::HashMap;
+
+use candle_core::{DType, Device, Module, Tensor, Var};
+use candle_nn::{VarBuilder, VarMap};
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+
+pub use config::ModelConfig;
+
+use crate::entropy::gaussian::{SCALE_MAX, SCALE_MIN};
+use crate::entropy::{EntropyTables, gaussian, hyper};
+use crate::error::{KilnError, Result};
+use crate::kernels::{FixedConv, HyperSynthesisFixed};
+use analysis::{Analysis, HyperAnalysis};
+use density::FactorizedDensity;
+use gain::GainUnits;
+use synthesis::{HyperSynthesis, Synthesis};
+
+/// Format tag stored in every model file's metadata.
+pub const MODEL_FORMAT: &str = "kiln-model-1";
+
+/// The shipped default model, embedded in the binary.
+pub static DEFAULT_MODEL_BYTES: &[u8] = include_bytes!("default.safetensors");
+
+/// The network: transforms, gains and hyper-latent density, with their variables.
+#[derive(Clone)]
+pub struct Model {
+    /// Hyper-parameters.
+    pub config: ModelConfig,
+    /// Analysis transform.
+    pub g_a: Analysis,
+    /// Hyper-analysis.
+    pub h_a: HyperAnalysis,
+    /// Synthesis transform.
+    pub g_s: Synthesis,
+    /// Hyper-synthesis (training path).
+    pub h_s: HyperSynthesis,
+    /// Gain units.
+    pub gains: GainUnits,
+    /// Hyper-latent density.
+    pub prior: FactorizedDensity,
+    varmap: VarMap,
+}
+
+impl std::fmt::Debug for Model {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Model").field("config", &self.config).finish_non_exhaustive()
+    }
+}
+
+/// What a training run records in the model file.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct TrainingSummary {
+    /// Folders the images came from.
+    pub data: Vec<String>,
+    /// Number of training images used.
+    pub images: usize,
+    /// Optimizer steps taken.
+    pub steps: u64,
+    /// Crop size.
+    pub patch: usize,
+    /// Batch size.
+    pub batch: usize,
+    /// Model it was fine-tuned from (fingerprint prefix), if any.
+    pub init: Option<String>,
+    /// Final training loss (moving average).
+    pub final_loss: Option<f64>,
+    /// Final training bits per pixel (moving average).
+    pub final_bpp: Option<f64>,
+    /// Final training PSNR in dB (moving average).
+    pub final_psnr: Option<f64>,
+    /// Free-form note.
+    pub note: String,
+}
+
+/// One anchor as recorded in the model file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AnchorRecord {
+    /// The quality at which the anchor sits.
+    pub quality: f32,
+    /// Its rate–distortion weight λ.
+    pub lambda: f64,
+}
+
+/// Outputs of a training forward pass.
+#[derive(Debug)]
+pub struct TrainOutput {
+    /// Reconstruction, `(B, 3, H, W)` in `[0, 1]` units.
+    pub x_hat: Tensor,
+    /// Bits of the latents, per sample `(B,)`.
+    pub bits_y: Tensor,
+    /// Bits of the hyper-latents, per sample `(B,)`.
+    pub bits_z: Tensor,
+}
+
+const LIKELIHOOD_FLOOR: f64 = 1e-9;
+
+fn std_normal_cdf(t: &Tensor) -> candle_core::Result<Tensor> {
+    ((t / std::f64::consts::SQRT_2)?.erf()? + 1.0)? * 0.5
+}
+
+/// Probability of the unit bin around `residual` under `N(0, σ²)`, floored at 1e-9.
+pub fn gaussian_likelihood(residual: &Tensor, sigma: &Tensor) -> candle_core::Result<Tensor> {
+    let v = residual.abs()?;
+    let upper = std_normal_cdf(&((0.5 - &v)? / sigma)?)?;
+    let lower = std_normal_cdf(&((-0.5 - &v)? / sigma)?)?;
+    (upper - lower)?.clamp(LIKELIHOOD_FLOOR, 1.0)
+}
+
+fn ste_round(x: &Tensor) -> candle_core::Result<Tensor> {
+    x + (x.round()? - x)?.detach()
+}
+
+impl Model {
+    /// A new model with seeded initial weights.
+    pub fn new(config: ModelConfig, seed: u64) -> Result<Self> {
+        let model = Self::build(config)?;
+        init::initialize(&model.varmap, seed)?;
+        Ok(model)
+    }
+
+    fn build(config: ModelConfig) -> Result<Self> {
+        config.validate()?;
+        let varmap = VarMap::new();
+        let vb = VarBuilder::from_varmap(&varmap, DType::F32, &Device::Cpu);
+        Ok(Model {
+            g_a: Analysis::new(&config, vb.pp("g_a"))?,
+            h_a: HyperAnalysis::new(&config, vb.pp("h_a"))?,
+            g_s: Synthesis::new(&config, vb.pp("g_s"))?,
+            h_s: HyperSynthesis::new(&config, vb.pp("h_s"))?,
+            gains: GainUnits::new(&config, vb.pp("gain"))?,
+            prior: FactorizedDensity::new(config.nz, vb.pp("prior"))?,
+            config,
+            varmap,
+        })
+    }
+
+    /// All trainable variables, by name, sorted.
+    pub fn named_vars(&self) -> Vec<(String, Var)> {
+        let data = self.varmap.data().lock().expect("varmap lock");
+        let mut v: Vec<(String, Var)> = data.iter().map(|(k, v)| (k.clone(), v.clone())).collect();
+        v.sort_by(|a, b| a.0.cmp(&b.0));
+        v
+    }
+
+    /// Sets variables from `tensors` (every variable must be present with its shape).
+    pub fn load_weights(&self, tensors: &HashMap<String, Tensor>) -> Result<()> {
+        for (name, var) in self.named_vars() {
+            let t = tensors.get(&name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?;
+            if t.dims() != var.dims() {
+                return Err(KilnError::BadModel(format!("weight {name} has shape {:?}, expected {:?}", t.dims(), var.dims())));
+            }
+            var.set(&t.to_dtype(DType::F32)?)?;
+        }
+        Ok(())
+    }
+
+    /// Training forward pass on `x` `(B, 3, H, W)` in `[0, 1]`, `H` and `W` multiples of 64.
+    ///
+    /// `anchor` `(B,)` u32 and `weight` `(B,)` f32 give each sample's quality position;
+    /// `noise_y`, `noise_z` are uniform in `[−½, ½)` with the shapes of `y` and `z` (passed in so
+    /// that training is reproducible from its seed). Rates use the noisy values (the
+    /// differentiable stand-in for rounding); the synthesis sees straight-through-rounded values.
+    pub fn forward_train(
+        &self,
+        x: &Tensor,
+        anchor: &Tensor,
+        weight: &Tensor,
+        noise_y: &Tensor,
+        noise_z: &Tensor,
+    ) -> Result<TrainOutput> {
+        let g = &self.gains;
+        let y = self.g_a.forward(x)?;
+        let yg = y.broadcast_mul(&GainUnits::batch(&g.y, anchor, weight)?)?;
+        let z = self.h_a.forward(&yg)?;
+        let zg = z.broadcast_mul(&GainUnits::batch(&g.z, anchor, weight)?)?;
+        let lik_z = self.prior.likelihood(&(&zg + noise_z)?)?.clamp(LIKELIHOOD_FLOOR, 1.0)?;
+        let z_hat = ste_round(&zg)?.broadcast_mul(&GainUnits::batch(&g.z_inv, anchor, weight)?)?;
+        let (mu, log_scale) = self.h_s.forward_split(&z_hat)?;
+        let sigma = log_scale.clamp(SCALE_MIN.ln(), SCALE_MAX.ln())?.exp()?;
+        let lik_y = gaussian_likelihood(&((&yg + noise_y)? - &mu)?, &sigma)?;
+        let y_hat = (ste_round(&(&yg - &mu)?)? + &mu)?;
+        let x_hat = self.g_s.forward(&y_hat.broadcast_mul(&GainUnits::batch(&g.y_inv, anchor, weight)?)?)?;
+        let bits = |lik: &Tensor| -> candle_core::Result<Tensor> {
+            let b = lik.dim(0)?;
+            lik.log()?.reshape((b, ()))?.sum(1)? * (-1.0 / std::f64::consts::LN_2)
+        };
+        Ok(TrainOutput { x_hat, bits_y: bits(&lik_y)?, bits_z: bits(&lik_z)? })
+    }
+
+    /// The fixed-order hyper-synthesis built from this model's `h_s` weights.
+    pub fn hyper_synthesis_fixed(&self) -> Result<HyperSynthesisFixed> {
+        let vars: HashMap<String, Var> = self.named_vars().into_iter().collect();
+        let conv = |name: &str| -> Result<FixedConv> {
+            let w = vars[&format!("{name}.weight")].as_tensor();
+            let b = vars[&format!("{name}.bias")].as_tensor();
+            let (co, ci, k, _) = w.dims4()?;
+            Ok(FixedConv::new(&w.flatten_all()?.to_vec1::<f32>()?, &b.to_vec1::<f32>()?, co, ci, k))
+        };
+        Ok(HyperSynthesisFixed::new([conv("h_s.0")?, conv("h_s.2")?, conv("h_s.4")?], self.config.nz))
+    }
+
+    /// Encoder and decoder multiply-adds per pixel `(encoder, decoder)`, the encoder including
+    /// `h_s` (it needs the same means and scales).
+    pub fn macs_per_pixel(&self) -> (f64, f64) {
+        let c = &self.config;
+        let hs = HyperSynthesis::macs_per_pixel(c);
+        (Analysis::macs_per_pixel(c) + HyperAnalysis::macs_per_pixel(c) + hs, Synthesis::macs_per_pixel(c) + hs)
+    }
+
+    /// Builds this model's entropy tables (the export step: floating point is used here, once).
+    pub fn build_entropy_tables(&self) -> Result<EntropyTables> {
+        Ok(EntropyTables {
+            gaussian: gaussian::gaussian_tables(),
+            log_scale_thresholds: gaussian::log_scale_thresholds(),
+            hyper: hyper::tabulate_density(&self.prior)?,
+        })
+    }
+
+    /// Serializes weights, freshly built entropy tables and metadata into model-file bytes.
+    pub fn export(&self, summary: &TrainingSummary) -> Result<Vec<u8>> {
+        let tables = self.build_entropy_tables()?;
+        let mut tensors: Vec<(String, Tensor)> =
+            self.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
+        tensors.extend(tables.to_tensors()?);
+        let anchors: Vec<AnchorRecord> = (0..self.config.anchors())
+            .map(|i| AnchorRecord { quality: self.config.anchor_quality(i), lambda: self.config.lambdas[i] })
+            .collect();
+        let json = |v: serde_json::Result<String>| v.expect("serializing plain structs cannot fail");
+        let metadata = HashMap::from([
+            ("kiln.format".to_string(), MODEL_FORMAT.to_string()),
+            ("kiln.config".to_string(), json(serde_json::to_string(&self.config))),
+            ("kiln.anchors".to_string(), json(serde_json::to_string(&anchors))),
+            ("kiln.training".to_string(), json(serde_json::to_string(summary))),
+        ]);
+        tensors.sort_by(|a, b| a.0.cmp(&b.0));
+        safetensors::serialize(tensors.iter().map(|(n, t)| (n.as_str(), t)), Some(metadata))
+            .map_err(|e| KilnError::BadModel(format!("cannot serialize: {e}")))
+    }
+}
+
+/// A loaded model file: the network, its integer tables, metadata and fingerprint.
+#[derive(Debug, Clone)]
+pub struct ModelFile {
+    /// The network.
+    pub model: Model,
+    /// Integer entropy tables, as stored.
+    pub tables: EntropyTables,
+    /// Training summary from the metadata.
+    pub training: TrainingSummary,
+    /// SHA-256 of the file's bytes.
+    pub fingerprint: [u8; 32],
+    /// Size of the file in bytes.
+    pub size: usize,
+}
+
+/// SHA-256 of model-file bytes.
+pub fn fingerprint(bytes: &[u8]) -> [u8; 32] {
+    Sha256::digest(bytes).into()
+}
+
+/// Lowercase hex of the first `n` bytes.
+pub fn hex_prefix(bytes: &[u8], n: usize) -> String {
+    bytes.iter().take(n).map(|b| format!("{b:02x}")).collect()
+}
+
+impl ModelFile {
+    /// Parses model-file bytes.
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self> {
+        if bytes.is_empty() {
+            return Err(KilnError::BadModel("the model file is empty (is a default model embedded in this build?)".into()));
+        }
+        let (_, meta) = safetensors::SafeTensors::read_metadata(bytes)
+            .map_err(|e| KilnError::BadModel(format!("not a safetensors file: {e}")))?;
+        let meta = meta.metadata().clone().unwrap_or_default();
+        if meta.get("kiln.format").map(String::as_str) != Some(MODEL_FORMAT) {
+            return Err(KilnError::BadModel(format!("not a Kiln model (expected format tag {MODEL_FORMAT})")));
+        }
+        let config: ModelConfig = serde_json::from_str(meta.get("kiln.config").map(String::as_str).unwrap_or(""))
+            .map_err(|e| KilnError::BadModel(format!("kiln.config: {e}")))?;
+        let training: TrainingSummary =
+            meta.get("kiln.training").and_then(|s| serde_json::from_str(s).ok()).unwrap_or_default();
+        let tensors = candle_core::safetensors::load_buffer(bytes, &Device::Cpu)?;
+        let model = Model::build(config)?;
+        model.load_weights(&tensors)?;
+        let tables = EntropyTables::from_tensors(&tensors)?;
+        if tables.hyper.len() != model.config.nz {
+            return Err(KilnError::BadModel("hyper tables do not match the hyper-latent channels".into()));
+        }
+        Ok(ModelFile { model, tables, training, fingerprint: fingerprint(bytes), size: bytes.len() })
+    }
+
+    /// Reads `path`, or the embedded default for `None` or the word `default`.
+    pub fn load(path: Option<&std::path::Path>) -> Result<Self> {
+        match path {
+            None => Self::from_bytes(DEFAULT_MODEL_BYTES),
+            Some(p) if p.as_os_str() == "default" => Self::from_bytes(DEFAULT_MODEL_BYTES),
+            Some(p) => Self::from_bytes(&std::fs::read(p).map_err(|e| KilnError::io(p, e))?),
+        }
+    }
+}

@@ -1,0 +1,102 @@
+//! Synthesis transform `g_s` (latent → image) and the training-time hyper-synthesis `h_s`
+//! (hyper-latent → mean and log-scale of each latent element).
+//!
+//! The decoder never runs this `h_s`: it runs [`crate::kernels::HyperSynthesisFixed`], the
+//! fixed-order version of the same layers, so that the tables it selects are bit-identical on
+//! every machine.
+
+use candle_core::{Module, Result, Tensor};
+use candle_nn::VarBuilder;
+
+use super::config::ModelConfig;
+use super::gdn::{Gdn, GdnDirection};
+use super::layers::{Conv, ConvConfig, SubpixelConv};
+
+/// `g_s`: four sub-pixel upsampling layers with inverse GDN between them; weights
+/// `g_s.{0,2,4,6}` (convs) and `g_s.{1,3,5}` (IGDN). Output `(B, 3, 16h, 16w)` in about `[0, 1]`.
+#[derive(Debug, Clone)]
+pub struct Synthesis {
+    ups: Vec<SubpixelConv>,
+    igdns: Vec<Gdn>,
+}
+
+impl Synthesis {
+    /// Builds `g_s` under `vb` (use `vb.pp("g_s")`).
+    pub fn new(c: &ModelConfig, vb: VarBuilder) -> Result<Self> {
+        let chans = [c.m, c.n, c.n, c.n, 3];
+        let mut ups = Vec::new();
+        let mut igdns = Vec::new();
+        for i in 0..4 {
+            ups.push(SubpixelConv::new(chans[i], chans[i + 1], c.synthesis_kernel, vb.pp((2 * i).to_string()))?);
+            if i < 3 {
+                igdns.push(Gdn::new(c.n, GdnDirection::Inverse, vb.pp((2 * i + 1).to_string()))?);
+            }
+        }
+        Ok(Synthesis { ups, igdns })
+    }
+
+    /// Multiply-adds per output pixel.
+    pub fn macs_per_pixel(c: &ModelConfig) -> f64 {
+        let k2 = (c.synthesis_kernel * c.synthesis_kernel) as f64;
+        let chans = [c.m, c.n, c.n, c.n, 3];
+        let mut macs = 0.0;
+        for i in 0..4 {
+            let in_positions = 1.0 / 4f64.powi(4 - i as i32);
+            macs += in_positions * k2 * (chans[i] * chans[i + 1] * 4) as f64;
+            if i < 3 {
+                macs += in_positions * 4.0 * (c.n * c.n) as f64;
+            }
+        }
+        macs
+    }
+}
+
+impl Module for Synthesis {
+    fn forward(&self, y: &Tensor) -> Result<Tensor> {
+        let mut h = y.clone();
+        for (i, up) in self.ups.iter().enumerate() {
+            h = up.forward(&h)?;
+            if let Some(g) = self.igdns.get(i) {
+                h = g.forward(&h)?;
+            }
+        }
+        Ok(h)
+    }
+}
+
+/// `h_s`: two sub-pixel upsamplers (3×3) with ReLU, then a 3×3 conv to `2M` channels; weights
+/// `h_s.{0,2,4}`. Output channels `0..M` are means, `M..2M` log-scales.
+#[derive(Debug, Clone)]
+pub struct HyperSynthesis {
+    up0: SubpixelConv,
+    up1: SubpixelConv,
+    out: Conv,
+}
+
+impl HyperSynthesis {
+    /// Builds `h_s` under `vb` (use `vb.pp("h_s")`).
+    pub fn new(c: &ModelConfig, vb: VarBuilder) -> Result<Self> {
+        let hh = c.hyper_hidden;
+        Ok(HyperSynthesis {
+            up0: SubpixelConv::new(c.nz, hh, 3, vb.pp("0"))?,
+            up1: SubpixelConv::new(hh, hh, 3, vb.pp("2"))?,
+            out: Conv::new(ConvConfig { in_channels: hh, out_channels: 2 * c.m, kernel: 3, stride: 1 }, vb.pp("4"))?,
+        })
+    }
+
+    /// Multiply-adds per image pixel.
+    pub fn macs_per_pixel(c: &ModelConfig) -> f64 {
+        let hh = c.hyper_hidden as f64;
+        let z = 1.0 / 4096.0;
+        z * 9.0 * c.nz as f64 * hh * 4.0 + z * 4.0 * 9.0 * hh * hh * 4.0 + z * 16.0 * 9.0 * hh * 2.0 * c.m as f64
+    }
+
+    /// Runs `h_s`, returning `(means, log_scales)`, each `(B, M, 4h, 4w)`.
+    pub fn forward_split(&self, z: &Tensor) -> Result<(Tensor, Tensor)> {
+        let h = self.up0.forward(z)?.relu()?;
+        let h = self.up1.forward(&h)?.relu()?;
+        let out = self.out.forward(&h)?;
+        let m = out.dim(1)? / 2;
+        Ok((out.narrow(1, 0, m)?, out.narrow(1, m, m)?))
+    }
+}

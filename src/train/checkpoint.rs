@@ -1,0 +1,78 @@
+//! Training checkpoints: weights, optimizer moments, step and RNG state in one safetensors file.
+
+use std::collections::HashMap;
+use std::path::Path;
+
+use candle_core::{Device, Tensor};
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use crate::error::{KilnError, Result};
+use crate::image_io::write_atomic;
+use crate::model::{Model, ModelConfig};
+
+/// Format tag of checkpoint files.
+pub const CHECKPOINT_FORMAT: &str = "kiln-checkpoint-1";
+
+/// The non-tensor part of a checkpoint.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CheckpointMeta {
+    /// Model configuration.
+    pub config: ModelConfig,
+    /// Optimizer steps taken.
+    pub step: u64,
+    /// RNG seed.
+    pub rng_seed: [u8; 32],
+    /// RNG stream.
+    pub rng_stream: u64,
+    /// RNG word position.
+    pub rng_word_pos: u128,
+    /// Fingerprint prefix of the model this run started from, if fine-tuning.
+    pub init: Option<String>,
+    /// Moving averages `(loss, bpp, psnr)`.
+    pub averages: Option<(f64, f64, f64)>,
+}
+
+impl CheckpointMeta {
+    /// Captures the RNG state.
+    pub fn rng_state(rng: &ChaCha8Rng) -> ([u8; 32], u64, u128) {
+        (rng.get_seed(), rng.get_stream(), rng.get_word_pos())
+    }
+
+    /// Rebuilds the RNG.
+    pub fn rng(&self) -> ChaCha8Rng {
+        use rand::SeedableRng;
+        let mut r = ChaCha8Rng::from_seed(self.rng_seed);
+        r.set_stream(self.rng_stream);
+        r.set_word_pos(self.rng_word_pos);
+        r
+    }
+}
+
+/// Writes a checkpoint atomically.
+pub fn save(path: &Path, model: &Model, optimizer: HashMap<String, Tensor>, meta: &CheckpointMeta) -> Result<()> {
+    let mut tensors: Vec<(String, Tensor)> = model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
+    tensors.extend(optimizer);
+    tensors.sort_by(|a, b| a.0.cmp(&b.0));
+    let metadata = HashMap::from([
+        ("kiln.format".to_string(), CHECKPOINT_FORMAT.to_string()),
+        ("kiln.checkpoint".to_string(), serde_json::to_string(meta).expect("plain struct")),
+    ]);
+    let bytes = safetensors::serialize(tensors.iter().map(|(n, t)| (n.as_str(), t)), Some(metadata))
+        .map_err(|e| KilnError::InvalidArgument(format!("cannot serialize checkpoint: {e}")))?;
+    write_atomic(path, &bytes)
+}
+
+/// Reads a checkpoint: its metadata and all its tensors.
+pub fn load(path: &Path) -> Result<(CheckpointMeta, HashMap<String, Tensor>)> {
+    let bytes = std::fs::read(path).map_err(|e| KilnError::io(path, e))?;
+    let bad = |m: String| KilnError::InvalidArgument(format!("{}: not a Kiln checkpoint: {m}", path.display()));
+    let (_, meta) = safetensors::SafeTensors::read_metadata(&bytes).map_err(|e| bad(e.to_string()))?;
+    let meta = meta.metadata().clone().unwrap_or_default();
+    if meta.get("kiln.format").map(String::as_str) != Some(CHECKPOINT_FORMAT) {
+        return Err(bad("format tag missing".into()));
+    }
+    let m: CheckpointMeta =
+        serde_json::from_str(meta.get("kiln.checkpoint").map(String::as_str).unwrap_or("")).map_err(|e| bad(e.to_string()))?;
+    Ok((m, candle_core::safetensors::load_buffer(&bytes, &Device::Cpu)?))
+}

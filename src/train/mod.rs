@@ -1,0 +1,319 @@
+//! Training: rate + λ·distortion on random crops, with checkpoints, validation and export.
+//!
+//! The objective is the negative evidence lower bound of a VAE whose posterior is a unit-width
+//! uniform box around the encoder's output: the box has entropy 0, so the bound reduces to the
+//! expected code length of the noisy latents under the prior (the rate) plus the expected
+//! reconstruction log-likelihood, which for a Gaussian decoder is λ·MSE up to constants.
+//! Sampling the box as `y + u`, `u ~ U(−½, ½)`, is the reparameterisation trick.
+
+pub mod checkpoint;
+pub mod data;
+pub mod optim;
+
+use std::path::PathBuf;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::Instant;
+
+use candle_core::{Device, Tensor};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+
+use crate::codec::Codec;
+use crate::error::{KilnError, Result};
+use crate::image_io::write_atomic;
+use crate::metrics::psnr;
+use crate::model::config::HYPER_STRIDE;
+use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix};
+use checkpoint::CheckpointMeta;
+use data::ImageSet;
+use optim::{Adam, AdamConfig};
+
+/// Where the initial weights come from.
+#[derive(Debug, Clone)]
+pub enum Init {
+    /// A new model with this configuration, initialised from the seed.
+    Fresh(ModelConfig),
+    /// Fine-tune an existing model file (`None`: the embedded default).
+    FineTune(Option<PathBuf>),
+}
+
+/// Everything `kiln train` takes.
+#[derive(Debug, Clone)]
+pub struct TrainOptions {
+    /// Folders of training images.
+    pub images: Vec<PathBuf>,
+    /// Where the exported model goes.
+    pub out: PathBuf,
+    /// Initial weights.
+    pub init: Init,
+    /// Total optimizer steps.
+    pub steps: u64,
+    /// Crops per step.
+    pub batch: usize,
+    /// Crop side (multiple of 64).
+    pub patch: usize,
+    /// Peak learning rate.
+    pub lr: f64,
+    /// Resume from this checkpoint.
+    pub resume: Option<PathBuf>,
+    /// Seed for initialisation, crops and noise.
+    pub seed: u64,
+    /// Validation images.
+    pub val: Option<PathBuf>,
+    /// Checkpoint path.
+    pub checkpoint: PathBuf,
+    /// Checkpoint every this many steps.
+    pub checkpoint_every: u64,
+    /// Validate every this many steps (0: only at the end).
+    pub val_every: u64,
+    /// Clip gradients to this global norm.
+    pub clip: f64,
+    /// Fraction of the run after which the learning rate drops tenfold.
+    pub decay_from: f64,
+    /// Show a progress bar.
+    pub progress: bool,
+}
+
+/// Learning rate at `step`: `lr` until `decay_from · steps`, then `lr / 10`.
+pub fn learning_rate(o: &TrainOptions, step: u64) -> f64 {
+    if (step as f64) < o.decay_from * o.steps as f64 { o.lr } else { o.lr * 0.1 }
+}
+
+/// What a run reports at the end.
+#[derive(Debug, Clone)]
+pub struct TrainReport {
+    /// Steps completed.
+    pub steps: u64,
+    /// Loss per step, from the start of this invocation.
+    pub losses: Vec<f64>,
+    /// Whether the run was interrupted (Ctrl-C) before finishing.
+    pub interrupted: bool,
+    /// Final moving averages `(loss, bpp, psnr)`.
+    pub averages: (f64, f64, f64),
+}
+
+static STOP: AtomicBool = AtomicBool::new(false);
+
+fn install_interrupt_handler() {
+    // A second installation in one process (tests) fails harmlessly: the first handler stays.
+    let _ = ctrlc::set_handler(|| STOP.store(true, Ordering::SeqCst));
+}
+
+/// Validation of a model on images: `(quality, mean bpp, mean PSNR)` per quality.
+pub fn validate(codec: &Codec, images: &ImageSet, qualities: &[f32]) -> Result<Vec<(f32, f64, f64)>> {
+    let mut out = Vec::new();
+    for &q in qualities {
+        let (mut bpp, mut p) = (0.0, 0.0);
+        for img in images.images() {
+            let enc = codec.encode(img, q)?;
+            let dec = codec.decode(&enc.bytes)?;
+            bpp += enc.bytes.len() as f64 * 8.0 / (img.width as f64 * img.height as f64);
+            p += psnr(&img.data, &dec.data).min(99.0);
+        }
+        let n = images.len().max(1) as f64;
+        out.push((q, bpp / n, p / n));
+    }
+    Ok(out)
+}
+
+struct Run {
+    model: Model,
+    adam: Adam,
+    rng: ChaCha8Rng,
+    step: u64,
+    init: Option<String>,
+    averages: Option<(f64, f64, f64)>,
+}
+
+fn start(o: &TrainOptions) -> Result<Run> {
+    if let Some(ck) = &o.resume {
+        let (meta, tensors) = checkpoint::load(ck)?;
+        let model = Model::new(meta.config.clone(), o.seed)?;
+        model.load_weights(&tensors)?;
+        let mut adam = Adam::new(model.named_vars(), AdamConfig::default())?;
+        adam.load_state(&tensors, meta.step);
+        eprintln!("resuming from {} at step {}", ck.display(), meta.step);
+        return Ok(Run { model, adam, rng: meta.rng(), step: meta.step, init: meta.init, averages: meta.averages });
+    }
+    let (model, init) = match &o.init {
+        Init::Fresh(c) => (Model::new(c.clone(), o.seed)?, None),
+        Init::FineTune(p) => {
+            let f = ModelFile::load(p.as_deref())?;
+            (f.model, Some(hex_prefix(&f.fingerprint, 8)))
+        }
+    };
+    let adam = Adam::new(model.named_vars(), AdamConfig::default())?;
+    Ok(Run { model, adam, rng: ChaCha8Rng::seed_from_u64(o.seed), step: 0, init, averages: None })
+}
+
+fn uniform_noise(rng: &mut ChaCha8Rng, shape: &[usize]) -> Result<Tensor> {
+    let n: usize = shape.iter().product();
+    let v: Vec<f32> = (0..n).map(|_| rng.gen_range(-0.5f32..0.5)).collect();
+    Ok(Tensor::from_vec(v, shape, &Device::Cpu)?)
+}
+
+/// Trains (or resumes, or fine-tunes) and exports the model to `o.out`.
+pub fn train(o: &TrainOptions) -> Result<TrainReport> {
+    if o.patch == 0 || o.patch % HYPER_STRIDE != 0 {
+        return Err(KilnError::InvalidArgument(format!("--patch {} must be a positive multiple of {HYPER_STRIDE}", o.patch)));
+    }
+    if o.batch == 0 || o.steps == 0 || !(o.lr > 0.0) {
+        return Err(KilnError::InvalidArgument("--batch, --steps and --lr must be positive".into()));
+    }
+    let data = ImageSet::load(&o.images, o.patch)?;
+    if data.is_empty() {
+        return Err(KilnError::InvalidArgument(format!(
+            "no usable training images under {:?} ({} skipped)\nhint: give folders of images at least {} px on each side",
+            o.images,
+            data.skipped.len(),
+            o.patch
+        )));
+    }
+    let val = match &o.val {
+        Some(d) => Some(ImageSet::load(std::slice::from_ref(d), HYPER_STRIDE)?),
+        None => None,
+    };
+    eprintln!("training on {} images ({} skipped)", data.len(), data.skipped.len());
+    let mut run = start(o)?;
+    install_interrupt_handler();
+    let config = run.model.config.clone();
+    let lambdas: Vec<f64> = config.lambdas.clone();
+    let bar = progress_bar(o, run.step);
+    let mut losses = Vec::new();
+    let t0 = Instant::now();
+    let first_step = run.step;
+    let mut interrupted = false;
+    while run.step < o.steps {
+        if STOP.load(Ordering::SeqCst) {
+            interrupted = true;
+            break;
+        }
+        let x = data.sample(o.batch, o.patch, &mut run.rng)?;
+        let (mut idx, mut wts, mut lam) = (vec![], vec![], vec![]);
+        for _ in 0..o.batch {
+            let t: f64 = run.rng.gen_range(0.0..(config.anchors() - 1) as f64);
+            let i = (t.floor() as usize).min(config.anchors() - 2);
+            let l = t - i as f64;
+            idx.push(i as u32);
+            wts.push(l as f32);
+            lam.push((lambdas[i].ln() * (1.0 - l) + lambdas[i + 1].ln() * l).exp() as f32);
+        }
+        let p = o.patch;
+        let ny = uniform_noise(&mut run.rng, &[o.batch, config.m, p / 16, p / 16])?;
+        let nz = uniform_noise(&mut run.rng, &[o.batch, config.nz, p / 64, p / 64])?;
+        let idx = Tensor::new(idx, &Device::Cpu)?;
+        let wts = Tensor::new(wts, &Device::Cpu)?;
+        let lam = Tensor::new(lam, &Device::Cpu)?;
+        let out = run.model.forward_train(&x, &idx, &wts, &ny, &nz)?;
+        let pixels = (p * p) as f64;
+        let bpp = ((&out.bits_y + &out.bits_z)? / pixels)?;
+        let mse = ((&out.x_hat - &x)? * 255.0)?.sqr()?.reshape((o.batch, ()))?.mean(1)?;
+        let loss = (&bpp + (&mse * &lam)?)?.mean(0)?;
+        let loss_v = loss.to_scalar::<f32>()?;
+        if !loss_v.is_finite() {
+            bar.abandon();
+            return Err(KilnError::Diverged { step: run.step, loss: loss_v });
+        }
+        let grads = loss.backward()?;
+        let norm = run.adam.grad_norm(&grads)?;
+        let scale = if norm > o.clip { o.clip / norm } else { 1.0 };
+        run.adam.step(&grads, learning_rate(o, run.step), scale)?;
+        run.step += 1;
+        let bpp_v = bpp.mean(0)?.to_scalar::<f32>()? as f64;
+        let mse_v = mse.mean(0)?.to_scalar::<f32>()? as f64;
+        let psnr_v = 10.0 * (255.0f64.powi(2) / mse_v.max(1e-10)).log10();
+        let cur = (loss_v as f64, bpp_v, psnr_v);
+        run.averages = Some(match run.averages {
+            None => cur,
+            Some(a) => (0.98 * a.0 + 0.02 * cur.0, 0.98 * a.1 + 0.02 * cur.1, 0.98 * a.2 + 0.02 * cur.2),
+        });
+        losses.push(loss_v as f64);
+        let a = run.averages.unwrap_or(cur);
+        let rate = (run.step - first_step) as f64 / t0.elapsed().as_secs_f64().max(1e-9);
+        bar.set_position(run.step);
+        bar.set_message(format!("loss {:.3}  bpp {:.3}  PSNR {:.2} dB  {:.2} steps/s", a.0, a.1, a.2, rate));
+        if !o.progress && (run.step % 50 == 0 || run.step == o.steps) {
+            eprintln!("step {}/{}  loss {:.4}  bpp {:.4}  PSNR {:.2} dB  {:.3} steps/s", run.step, o.steps, a.0, a.1, a.2, rate);
+        }
+        if run.step % o.checkpoint_every == 0 {
+            save_checkpoint(o, &run)?;
+        }
+        if o.val_every > 0 && run.step % o.val_every == 0 {
+            if let Some(v) = &val {
+                report_validation(&run, o, v, &data, &bar)?;
+            }
+        }
+    }
+    save_checkpoint(o, &run)?;
+    bar.finish_and_clear();
+    let averages = run.averages.unwrap_or((f64::NAN, f64::NAN, f64::NAN));
+    if interrupted {
+        eprintln!(
+            "interrupted at step {}; checkpoint saved to {}\nhint: continue with --resume {}",
+            run.step,
+            o.checkpoint.display(),
+            o.checkpoint.display()
+        );
+    } else {
+        let bytes = run.model.export(&summary(&run, o, &data))?;
+        write_atomic(&o.out, &bytes)?;
+        eprintln!("exported {} ({} bytes) after {} steps", o.out.display(), bytes.len(), run.step);
+        if let Some(v) = &val {
+            report_validation(&run, o, v, &data, &indicatif::ProgressBar::hidden())?;
+        }
+    }
+    Ok(TrainReport { steps: run.step, losses, interrupted, averages })
+}
+
+fn summary(run: &Run, o: &TrainOptions, data: &ImageSet) -> TrainingSummary {
+    let a = run.averages;
+    TrainingSummary {
+        data: o.images.iter().map(|p| p.display().to_string()).collect(),
+        images: data.len(),
+        steps: run.step,
+        patch: o.patch,
+        batch: o.batch,
+        init: run.init.clone(),
+        final_loss: a.map(|a| a.0),
+        final_bpp: a.map(|a| a.1),
+        final_psnr: a.map(|a| a.2),
+        note: String::new(),
+    }
+}
+
+fn save_checkpoint(o: &TrainOptions, run: &Run) -> Result<()> {
+    let (rng_seed, rng_stream, rng_word_pos) = CheckpointMeta::rng_state(&run.rng);
+    let meta = CheckpointMeta {
+        config: run.model.config.clone(),
+        step: run.step,
+        rng_seed,
+        rng_stream,
+        rng_word_pos,
+        init: run.init.clone(),
+        averages: run.averages,
+    };
+    checkpoint::save(&o.checkpoint, &run.model, run.adam.state(), &meta)
+}
+
+fn report_validation(run: &Run, o: &TrainOptions, val: &ImageSet, data: &ImageSet, bar: &indicatif::ProgressBar) -> Result<()> {
+    let bytes = run.model.export(&summary(run, o, data))?;
+    let codec = Codec::new(ModelFile::from_bytes(&bytes)?)?;
+    let rows = validate(&codec, val, &[1.0, 50.0, 100.0])?;
+    let text: Vec<String> = rows.iter().map(|(q, b, p)| format!("q{q}: {b:.3} bpp {p:.2} dB")).collect();
+    bar.println(format!("validation at step {}: {}", run.step, text.join(", ")));
+    Ok(())
+}
+
+fn progress_bar(o: &TrainOptions, start: u64) -> indicatif::ProgressBar {
+    if !o.progress {
+        return indicatif::ProgressBar::hidden();
+    }
+    let bar = indicatif::ProgressBar::new(o.steps);
+    bar.set_style(
+        indicatif::ProgressStyle::with_template("{bar:30} {pos}/{len} [{elapsed_precise} < {eta_precise}] {msg}")
+            .expect("valid template"),
+    );
+    bar.set_position(start);
+    bar
+}
+
