@@ -15,7 +15,7 @@ use serde::Serialize;
 
 use crate::container::{self, Header, TileRecord, TileStreams};
 use crate::entropy::coder::{SymbolDecoder, SymbolEncoder, TableSet};
-use crate::entropy::gaussian::scale_index;
+use crate::entropy::gaussian::{SCALE_MAX, SCALE_MIN, scale_index};
 use crate::error::{KilnError, Result};
 use crate::image_io::Picture;
 use crate::kernels::{HyperSynthesisFixed, PriorParameters, SimdMode};
@@ -196,6 +196,35 @@ impl Codec {
         let plane = hz * wz;
         let z: Vec<f32> = z_hat.iter().enumerate().map(|(i, &v)| v as f32 * gains.z_inv[i / plane]).collect();
         self.hyper_fixed.forward(&z, hz, wz, self.simd)
+    }
+
+    /// The rate the model's continuous likelihoods assign to the values [`Codec::encode`] codes
+    /// (`(latent bits, hyper-latent bits)`), without tables or entropy coding: the figure
+    /// training optimizes, for comparison with the coded size.
+    pub fn estimate_bits(&self, pic: &Picture, quality: f32) -> Result<(f64, f64)> {
+        check_quality(quality)?;
+        let model = &self.file.model;
+        let gains = self.gains(quality)?;
+        let (tw, th) = container::choose_tile_size(pic.width, pic.height);
+        let (mut by, mut bz) = (0.0, 0.0);
+        for rect in container::tile_grid(pic.width, pic.height, tw, th) {
+            let tile = tile_tensor(pic, rect)?;
+            let y = scale_channels(&model.g_a.forward(&tile.tensor)?, &gains.y)?;
+            let z = scale_channels(&model.h_a.forward(&y)?, &gains.z)?.round()?;
+            let (_, _, hz, wz) = z.dims4()?;
+            let z_hat: Vec<i32> = z.flatten_all()?.to_vec1::<f32>()?.iter().map(|&v| v as i32).collect();
+            let prior = self.prior(&z_hat, hz, wz, &gains);
+            let shape = y.shape().clone();
+            let mu = Tensor::from_vec(prior.means, &shape, &Device::Cpu)?;
+            let log_s = Tensor::from_vec(prior.log_scales, &shape, &Device::Cpu)?;
+            let sigma = log_s.clamp(SCALE_MIN.ln(), SCALE_MAX.ln())?.exp()?;
+            let lik_y = crate::model::gaussian_likelihood(&(&y - &mu)?.round()?, &sigma)?;
+            let lik_z = model.prior.likelihood(&z)?;
+            let bits = |t: &Tensor| -> Result<f64> { Ok(-(t.log()?.sum_all()?.to_scalar::<f32>()? as f64) / std::f64::consts::LN_2) };
+            by += bits(&lik_y)?;
+            bz += bits(&lik_z.clamp(1e-9, 1.0)?)?;
+        }
+        Ok((by, bz))
     }
 
     /// Decompresses a container made with this codec's model.

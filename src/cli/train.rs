@@ -56,6 +56,9 @@ pub struct TrainArgs {
     /// Fraction of the run after which the learning rate drops tenfold.
     #[arg(long, default_value_t = 0.8)]
     decay_from: f64,
+    /// Stop after this many steps of this invocation (checkpoint and export; resume later).
+    #[arg(long)]
+    stop_after: Option<u64>,
     /// Print plain log lines instead of a progress bar.
     #[arg(long)]
     log: bool,
@@ -94,11 +97,9 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         val_every: a.val_every,
         clip: a.clip,
         decay_from: a.decay_from,
+        stop_after: a.stop_after,
         progress: !a.log,
     };
-    let report = kiln::train::train(&opts)?;
-    if report.interrupted {
-        std::process::exit(130);
-    }
+    kiln::train::train(&opts)?;
     Ok(())
 }

@@ -70,6 +70,9 @@ pub struct TrainOptions {
     pub clip: f64,
     /// Fraction of the run after which the learning rate drops tenfold.
     pub decay_from: f64,
+    /// Stop (checkpoint and export) after this many steps of this invocation, to train in
+    /// time-boxed chunks; `--resume` continues on the same schedule.
+    pub stop_after: Option<u64>,
     /// Show a progress bar.
     pub progress: bool,
 }
@@ -86,7 +89,7 @@ pub struct TrainReport {
     pub steps: u64,
     /// Loss per step, from the start of this invocation.
     pub losses: Vec<f64>,
-    /// Whether the run was interrupted (Ctrl-C) before finishing.
+    /// Whether the run stopped (Ctrl-C or `stop_after`) before reaching `steps`.
     pub interrupted: bool,
     /// Final moving averages `(loss, bpp, psnr)`.
     pub averages: (f64, f64, f64),
@@ -184,7 +187,8 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
     let first_step = run.step;
     let mut interrupted = false;
     while run.step < o.steps {
-        if STOP.load(Ordering::SeqCst) {
+        let paused = o.stop_after.is_some_and(|n| run.step - first_step >= n);
+        if STOP.load(Ordering::SeqCst) || paused {
             interrupted = true;
             break;
         }
@@ -247,20 +251,19 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
     save_checkpoint(o, &run)?;
     bar.finish_and_clear();
     let averages = run.averages.unwrap_or((f64::NAN, f64::NAN, f64::NAN));
+    let bytes = run.model.export(&summary(&run, o, &data))?;
+    write_atomic(&o.out, &bytes)?;
+    eprintln!("exported {} ({} bytes) after {} steps", o.out.display(), bytes.len(), run.step);
     if interrupted {
         eprintln!(
-            "interrupted at step {}; checkpoint saved to {}\nhint: continue with --resume {}",
+            "stopped at step {} of {}; checkpoint saved to {}\nhint: continue with --resume {}",
             run.step,
+            o.steps,
             o.checkpoint.display(),
             o.checkpoint.display()
         );
-    } else {
-        let bytes = run.model.export(&summary(&run, o, &data))?;
-        write_atomic(&o.out, &bytes)?;
-        eprintln!("exported {} ({} bytes) after {} steps", o.out.display(), bytes.len(), run.step);
-        if let Some(v) = &val {
-            report_validation(&run, o, v, &data, &indicatif::ProgressBar::hidden())?;
-        }
+    } else if let Some(v) = &val {
+        report_validation(&run, o, v, &data, &indicatif::ProgressBar::hidden())?;
     }
     Ok(TrainReport { steps: run.step, losses, interrupted, averages })
 }
@@ -300,7 +303,8 @@ fn report_validation(run: &Run, o: &TrainOptions, val: &ImageSet, data: &ImageSe
     let codec = Codec::new(ModelFile::from_bytes(&bytes)?)?;
     let rows = validate(&codec, val, &[1.0, 50.0, 100.0])?;
     let text: Vec<String> = rows.iter().map(|(q, b, p)| format!("q{q}: {b:.3} bpp {p:.2} dB")).collect();
-    bar.println(format!("validation at step {}: {}", run.step, text.join(", ")));
+    let line = format!("validation at step {}: {}", run.step, text.join(", "));
+    if bar.is_hidden() { eprintln!("{line}") } else { bar.println(line) }
     Ok(())
 }
 

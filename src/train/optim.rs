@@ -67,8 +67,9 @@ impl Adam {
             let v = ((&self.v[i] * c.beta2)? + (g.sqr()? * (1.0 - c.beta2))?)?;
             let update = ((&m / bc1)? / ((&v / bc2)?.sqrt()? + c.eps)?)?;
             var.set(&(var.as_tensor() - (update * lr)?)?)?;
-            self.m[i] = m;
-            self.v[i] = v;
+            // Detach, or every step's graph would stay reachable through the moments.
+            self.m[i] = m.detach();
+            self.v[i] = v.detach();
         }
         Ok(())
     }

@@ -1,0 +1,104 @@
+//! Training end to end on a tiny configuration: loss goes down, export round-trips, resume
+//! continues exactly, and the model's rate estimate matches the coded size.
+
+mod common;
+
+use std::path::{Path, PathBuf};
+
+use common::synthetic_picture;
+use kiln::train::{Init, TrainOptions, train};
+use kiln::{Codec, ModelConfig, ModelFile};
+
+fn write_images(dir: &Path) {
+    for (i, (w, h)) in [(96, 80), (130, 70), (64, 64), (150, 100)].iter().enumerate() {
+        let pic = synthetic_picture(*w, *h, 3, i as u64 + 1);
+        std::fs::write(dir.join(format!("img{i}.png")), pic.to_png().unwrap()).unwrap();
+    }
+    // Too small and unreadable files are skipped, not fatal.
+    std::fs::write(dir.join("small.png"), synthetic_picture(20, 20, 3, 9).to_png().unwrap()).unwrap();
+    std::fs::write(dir.join("broken.png"), b"not an image").unwrap();
+}
+
+fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
+    TrainOptions {
+        images: vec![dir.join("imgs")],
+        checkpoint: out.with_extension("ckpt"),
+        out,
+        init: Init::Fresh(ModelConfig::tiny()),
+        steps,
+        batch: 2,
+        patch: 64,
+        lr: 2e-3,
+        resume: None,
+        seed: 7,
+        val: None,
+        checkpoint_every: 10,
+        val_every: 0,
+        clip: 5.0,
+        decay_from: 0.8,
+        stop_after: None,
+        progress: false,
+    }
+}
+
+#[test]
+fn tiny_model_trains_exports_and_round_trips() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    write_images(&tmp.path().join("imgs"));
+    let out = tmp.path().join("m.safetensors");
+    let report = train(&options(tmp.path(), out.clone(), 60)).unwrap();
+    assert_eq!(report.steps, 60);
+    let first: f64 = report.losses[..10].iter().sum::<f64>() / 10.0;
+    let last: f64 = report.losses[50..].iter().sum::<f64>() / 10.0;
+    assert!(last < 0.8 * first, "loss did not decrease: {first} → {last}");
+
+    let file = ModelFile::load(Some(&out)).unwrap();
+    assert_eq!(file.training.steps, 60);
+    let codec = Codec::new(file).unwrap();
+    let pic = synthetic_picture(150, 100, 3, 4);
+    for q in [1.0, 50.0, 100.0] {
+        let enc = codec.encode(&pic, q).unwrap();
+        let dec = codec.decode(&enc.bytes).unwrap();
+        assert_eq!((dec.width, dec.height), (150, 100));
+        // The rate the model estimates agrees with what the coder writes.
+        let (by, bz) = codec.estimate_bits(&pic, q).unwrap();
+        let est = by + bz;
+        let rel = (enc.coded_bits as f64 - est).abs() / est;
+        assert!(rel < 0.02, "q{q}: estimated {est:.0} bits, coded {}", enc.coded_bits);
+    }
+}
+
+#[test]
+fn resuming_continues_exactly_where_the_run_stopped() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    write_images(&tmp.path().join("imgs"));
+    let straight = tmp.path().join("a.safetensors");
+    train(&options(tmp.path(), straight.clone(), 20)).unwrap();
+
+    let split = tmp.path().join("b.safetensors");
+    let mut o = options(tmp.path(), split.clone(), 20);
+    o.stop_after = Some(10);
+    let first = train(&o).unwrap();
+    assert!(first.interrupted && first.steps == 10);
+    o.stop_after = None;
+    o.resume = Some(split.with_extension("ckpt"));
+    train(&o).unwrap();
+    let a = ModelFile::load(Some(&straight)).unwrap();
+    let b = ModelFile::load(Some(&split)).unwrap();
+    for ((na, va), (nb, vb)) in a.model.named_vars().iter().zip(b.model.named_vars().iter()) {
+        assert_eq!(na, nb);
+        let diff = (va.as_tensor() - vb.as_tensor()).unwrap().abs().unwrap().max_all().unwrap().to_scalar::<f32>().unwrap();
+        assert!(diff < 1e-5, "{na} differs by {diff}");
+    }
+}
+
+#[test]
+fn training_refuses_a_folder_without_usable_images() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    std::fs::write(tmp.path().join("imgs/broken.png"), b"nope").unwrap();
+    let err = train(&options(tmp.path(), tmp.path().join("m.safetensors"), 5)).unwrap_err();
+    assert!(err.to_string().contains("no usable training images"), "{err}");
+}
