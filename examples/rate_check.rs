@@ -23,14 +23,27 @@ fn main() -> kiln::Result<()> {
     let h = (pic.height as usize / 64) * 64;
     let rgb = pic.to_rgb();
     let mut data = vec![0f32; 3 * w * h];
-    for y in 0..h { for x in 0..w { for c in 0..3 { data[(c * h + y) * w + x] = rgb[(y * pic.width as usize + x) * 3 + c] as f32 / 255.0; } } }
+    for y in 0..h {
+        for x in 0..w {
+            for c in 0..3 {
+                data[(c * h + y) * w + x] = rgb[(y * pic.width as usize + x) * 3 + c] as f32 / 255.0;
+            }
+        }
+    }
     let x = candle_core::Tensor::from_vec(data, (1, 3, h, w), &candle_core::Device::Cpu)?;
     let (i, l) = model.config.anchor_position(q)?;
     let idx = candle_core::Tensor::new(&[i as u32], &candle_core::Device::Cpu)?;
     let wt = candle_core::Tensor::new(&[l], &candle_core::Device::Cpu)?;
     for amp in [0.0f32, 1.0] {
-        let ny = (candle_core::Tensor::rand(-0.5f32, 0.5, (1, model.config.m, h / 16, w / 16), &candle_core::Device::Cpu)? * amp as f64)?;
-        let nz = (candle_core::Tensor::rand(-0.5f32, 0.5, (1, model.config.nz, h / 64, w / 64), &candle_core::Device::Cpu)? * amp as f64)?;
+        let ny =
+            (candle_core::Tensor::rand(-0.5f32, 0.5, (1, model.config.m, h / 16, w / 16), &candle_core::Device::Cpu)?
+                * amp as f64)?;
+        let nz = (candle_core::Tensor::rand(
+            -0.5f32,
+            0.5,
+            (1, model.config.nz, h / 64, w / 64),
+            &candle_core::Device::Cpu,
+        )? * amp as f64)?;
         let out = model.forward_train(&x, &idx, &wt, &ny, &nz)?;
         let by = out.bits_y.to_vec1::<f32>()?[0] as f64 / (w * h) as f64;
         let bz = out.bits_z.to_vec1::<f32>()?[0] as f64 / (w * h) as f64;

@@ -162,7 +162,12 @@ impl Codec {
         Ok(Encoded { bytes: container::write(&header, &streams)?, ideal_bits, coded_bits })
     }
 
-    fn encode_tile(&self, pic: &Picture, rect: container::Rect, gains: &GainVectors) -> Result<(TileRecord, TileStreams, f64)> {
+    fn encode_tile(
+        &self,
+        pic: &Picture,
+        rect: container::Rect,
+        gains: &GainVectors,
+    ) -> Result<(TileRecord, TileStreams, f64)> {
         let model = &self.file.model;
         let tile = tile_tensor(pic, rect)?;
         let y = scale_channels(&model.g_a.forward(&tile.tensor)?, &gains.y)?;
@@ -220,7 +225,9 @@ impl Codec {
             let sigma = log_s.clamp(SCALE_MIN.ln(), SCALE_MAX.ln())?.exp()?;
             let lik_y = crate::model::gaussian_likelihood(&(&y - &mu)?.round()?, &sigma)?;
             let lik_z = model.prior.likelihood(&z)?;
-            let bits = |t: &Tensor| -> Result<f64> { Ok(-(t.log()?.sum_all()?.to_scalar::<f32>()? as f64) / std::f64::consts::LN_2) };
+            let bits = |t: &Tensor| -> Result<f64> {
+                Ok(-(t.log()?.sum_all()?.to_scalar::<f32>()? as f64) / std::f64::consts::LN_2)
+            };
             by += bits(&lik_y)?;
             bz += bits(&lik_z.clamp(1e-9, 1.0)?)?;
         }
@@ -258,12 +265,20 @@ impl Codec {
         Ok(Picture { width: header.width, height: header.height, channels: header.channels, data })
     }
 
-    fn decode_tile(&self, rect: container::Rect, record: &TileRecord, s: TileStreams, gains: &GainVectors) -> Result<Vec<u8>> {
+    fn decode_tile(
+        &self,
+        rect: container::Rect,
+        record: &TileRecord,
+        s: TileStreams,
+        gains: &GainVectors,
+    ) -> Result<Vec<u8>> {
         let cfg = &self.file.model.config;
         let (tw, th) = (rect.2 as usize, rect.3 as usize);
         let (hz, wz) = (th.div_ceil(HYPER_STRIDE), tw.div_ceil(HYPER_STRIDE));
         let (hy, wy) = (hz * 4, wz * 4);
-        if record.hyper != [cfg.nz as u16, hz as u16, wz as u16] || record.latent != [cfg.m as u16, hy as u16, wy as u16] {
+        if record.hyper != [cfg.nz as u16, hz as u16, wz as u16]
+            || record.latent != [cfg.m as u16, hy as u16, wy as u16]
+        {
             return Err(KilnError::Corrupt(format!(
                 "tile shapes {:?}/{:?} do not match a {tw}×{th} tile for this model",
                 record.latent, record.hyper

@@ -7,10 +7,14 @@ use std::path::PathBuf;
 #[derive(Debug, thiserror::Error)]
 pub enum KilnError {
     /// A container file is malformed, truncated or corrupted.
-    #[error("corrupt container: {0}\nhint: the file was damaged or is not a Kiln container; re-create it from the source image")]
+    #[error(
+        "corrupt container: {0}\nhint: the file was damaged or is not a Kiln container; re-create it from the source image"
+    )]
     Corrupt(String),
     /// A container written by a format version this build does not read.
-    #[error("unsupported container version {found} (this build reads version {supported})\nhint: decode it with the Kiln release that wrote it")]
+    #[error(
+        "unsupported container version {found} (this build reads version {supported})\nhint: decode it with the Kiln release that wrote it"
+    )]
     UnsupportedVersion {
         /// Version found in the file.
         found: u16,
@@ -18,7 +22,9 @@ pub enum KilnError {
         supported: u16,
     },
     /// The container was written with a different model than the one given.
-    #[error("model mismatch: the container was written with model {expected}, but model {given} was given\nhint: pass the model it was written with via --model")]
+    #[error(
+        "model mismatch: the container was written with model {expected}, but model {given} was given\nhint: pass the model it was written with via --model"
+    )]
     ModelMismatch {
         /// Fingerprint recorded in the container (hex prefix).
         expected: String,
@@ -46,7 +52,9 @@ pub enum KilnError {
     #[error("tensor computation failed: {0}")]
     Tensor(#[from] candle_core::Error),
     /// Training stopped because the loss became NaN or infinite.
-    #[error("training diverged at step {step}: loss is {loss}\nhint: the last good checkpoint was kept; resume from it with a lower --lr")]
+    #[error(
+        "training diverged at step {step}: loss is {loss}\nhint: the last good checkpoint was kept; resume from it with a lower --lr"
+    )]
     Diverged {
         /// The step at which the loss was not finite.
         step: u64,

@@ -49,7 +49,8 @@ impl Picture {
             ));
         }
         let (width, height) = (img.width(), img.height());
-        let (channels, data) = if color.has_color() { (3, img.into_rgb8().into_raw()) } else { (1, img.into_luma8().into_raw()) };
+        let (channels, data) =
+            if color.has_color() { (3, img.into_rgb8().into_raw()) } else { (1, img.into_luma8().into_raw()) };
         Ok(Picture { width, height, channels, data })
     }
 

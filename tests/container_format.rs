@@ -70,7 +70,9 @@ fn decode_rejects_wrong_magic_and_unknown_version() {
     let mut b = bytes.clone();
     LittleEndian::write_u16(&mut b[4..6], FORMAT_VERSION + 1);
     reseal(&mut b);
-    assert!(matches!(codec.decode(&b), Err(KilnError::UnsupportedVersion { found, .. }) if found == FORMAT_VERSION + 1));
+    assert!(
+        matches!(codec.decode(&b), Err(KilnError::UnsupportedVersion { found, .. }) if found == FORMAT_VERSION + 1)
+    );
 }
 
 #[test]

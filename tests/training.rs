@@ -89,7 +89,8 @@ fn resuming_continues_exactly_where_the_run_stopped() {
     let b = ModelFile::load(Some(&split)).unwrap();
     for ((na, va), (nb, vb)) in a.model.named_vars().iter().zip(b.model.named_vars().iter()) {
         assert_eq!(na, nb);
-        let diff = (va.as_tensor() - vb.as_tensor()).unwrap().abs().unwrap().max_all().unwrap().to_scalar::<f32>().unwrap();
+        let diff =
+            (va.as_tensor() - vb.as_tensor()).unwrap().abs().unwrap().max_all().unwrap().to_scalar::<f32>().unwrap();
         assert!(diff < 1e-5, "{na} differs by {diff}");
     }
 }

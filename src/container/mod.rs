@@ -168,7 +168,9 @@ pub fn write(header: &Header, streams: &[TileStreams]) -> Result<Vec<u8>> {
     check_geometry(header.width, header.height, header.channels, header.bit_depth)?;
     assert_eq!(header.tiles.len(), streams.len(), "one stream pair per tile");
     let header_len = FIXED_LEN + TILE_RECORD_LEN * header.tiles.len() + 4;
-    let mut out = Vec::with_capacity(header_len + streams.iter().map(|s| 4 * (s.hyper.len() + s.latent.len())).sum::<usize>() + 4);
+    let mut out = Vec::with_capacity(
+        header_len + streams.iter().map(|s| 4 * (s.hyper.len() + s.latent.len())).sum::<usize>() + 4,
+    );
     out.extend_from_slice(&MAGIC);
     out.write_u16::<LittleEndian>(FORMAT_VERSION).expect(VEC_WRITE);
     out.write_u16::<LittleEndian>(0).expect(VEC_WRITE);
@@ -235,7 +237,10 @@ pub fn read(bytes: &[u8]) -> Result<(Header, Vec<TileStreams>)> {
     }
     let expected_len = FIXED_LEN + TILE_RECORD_LEN * tile_count as usize + 4;
     if header_len != expected_len || header_len + 4 > bytes.len() {
-        return Err(corrupt(format!("header length {header_len} does not fit a {}-byte file with {tile_count} tiles", bytes.len())));
+        return Err(corrupt(format!(
+            "header length {header_len} does not fit a {}-byte file with {tile_count} tiles",
+            bytes.len()
+        )));
     }
     let stored = rd32(header_len - 4);
     if crc32fast::hash(&bytes[..header_len - 4]) != stored {
@@ -275,14 +280,18 @@ pub fn read(bytes: &[u8]) -> Result<(Header, Vec<TileStreams>)> {
             hyper_bytes: rd32(off + 12),
             latent_bytes: rd32(off + 16),
         };
-        if t.hyper_bytes % 4 != 0 || t.latent_bytes % 4 != 0 {
+        if !t.hyper_bytes.is_multiple_of(4) || !t.latent_bytes.is_multiple_of(4) {
             return Err(corrupt(format!("tile {i}: stream length not a multiple of 4")));
         }
         payload += t.hyper_bytes as u64 + t.latent_bytes as u64;
         tiles.push(t);
     }
     if header_len as u64 + payload + 4 != bytes.len() as u64 {
-        return Err(corrupt(format!("stream lengths add up to {} bytes, file has {}", header_len as u64 + payload + 4, bytes.len())));
+        return Err(corrupt(format!(
+            "stream lengths add up to {} bytes, file has {}",
+            header_len as u64 + payload + 4,
+            bytes.len()
+        )));
     }
     let mut pos = header_len;
     let mut streams = Vec::with_capacity(tiles.len());
@@ -293,6 +302,7 @@ pub fn read(bytes: &[u8]) -> Result<(Header, Vec<TileStreams>)> {
         pos += t.latent_bytes as usize;
         streams.push(TileStreams { hyper: h, latent: l });
     }
-    let header = Header { width, height, channels, bit_depth, model_fingerprint, quality, tile_width, tile_height, tiles };
+    let header =
+        Header { width, height, channels, bit_depth, model_fingerprint, quality, tile_width, tile_height, tiles };
     Ok((header, streams))
 }

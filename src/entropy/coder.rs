@@ -150,12 +150,16 @@ fn corrupt(what: &str) -> KilnError {
 impl<'a> SymbolDecoder<'a> {
     /// Starts decoding `words` with tables from `set`.
     pub fn new(set: &'a TableSet, words: Vec<u32>) -> Result<Self> {
-        let coder = DefaultAnsCoder::from_compressed(words).map_err(|_| corrupt("entropy-coded stream ends in a zero word"))?;
+        let coder =
+            DefaultAnsCoder::from_compressed(words).map_err(|_| corrupt("entropy-coded stream ends in a zero word"))?;
         Ok(SymbolDecoder { set, coder })
     }
 
     fn pop_uniform(&mut self, range: u32) -> Result<u32> {
-        let v = self.coder.decode_symbol(Uniform::new(range as usize)).map_err(|_| corrupt("entropy-coded stream ended early"))?;
+        let v = self
+            .coder
+            .decode_symbol(Uniform::new(range as usize))
+            .map_err(|_| corrupt("entropy-coded stream ended early"))?;
         Ok(v as u32)
     }
 

@@ -72,12 +72,17 @@ fn pack(tables: &[IntTable], prefix: &str, out: &mut HashMap<String, Tensor>) ->
 
 fn unpack(tensors: &HashMap<String, Tensor>, prefix: &str) -> Result<Vec<IntTable>> {
     let get = |name: &str| {
-        tensors.get(&format!("{prefix}.{name}")).ok_or_else(|| KilnError::BadModel(format!("missing tensor {prefix}.{name}")))
+        tensors
+            .get(&format!("{prefix}.{name}"))
+            .ok_or_else(|| KilnError::BadModel(format!("missing tensor {prefix}.{name}")))
     };
     let lo = get("lo")?.to_vec1::<i64>()?;
     let offsets = get("offsets")?.to_vec1::<u32>()?;
     let freqs = get("freqs")?.to_vec1::<u32>()?;
-    if offsets.len() != lo.len() + 1 || offsets.first() != Some(&0) || *offsets.last().unwrap_or(&0) as usize != freqs.len() {
+    if offsets.len() != lo.len() + 1
+        || offsets.first() != Some(&0)
+        || *offsets.last().unwrap_or(&0) as usize != freqs.len()
+    {
         return Err(KilnError::BadModel(format!("{prefix}: table offsets do not match")));
     }
     let mut tables = Vec::with_capacity(lo.len());
@@ -86,7 +91,8 @@ fn unpack(tensors: &HashMap<String, Tensor>, prefix: &str) -> Result<Vec<IntTabl
         if a >= b || b > freqs.len() {
             return Err(KilnError::BadModel(format!("{prefix}: table {i} has a bad range")));
         }
-        let lo = i32::try_from(l).map_err(|_| KilnError::BadModel(format!("{prefix}: table {i} offset out of range")))?;
+        let lo =
+            i32::try_from(l).map_err(|_| KilnError::BadModel(format!("{prefix}: table {i} offset out of range")))?;
         let t = IntTable { lo, freqs: freqs[a..b].to_vec() };
         t.validate()?;
         tables.push(t);
@@ -100,7 +106,10 @@ impl EntropyTables {
         let mut out = HashMap::new();
         pack(&self.gaussian, "entropy.gaussian", &mut out)?;
         pack(&self.hyper, "entropy.hyper", &mut out)?;
-        out.insert("entropy.log_scale_thresholds".into(), Tensor::new(self.log_scale_thresholds.clone(), &Device::Cpu)?);
+        out.insert(
+            "entropy.log_scale_thresholds".into(),
+            Tensor::new(self.log_scale_thresholds.clone(), &Device::Cpu)?,
+        );
         Ok(out)
     }
 

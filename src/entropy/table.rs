@@ -50,7 +50,11 @@ impl IntTable {
     /// Information content in bits of coding `value` with this table (escape payload excluded).
     pub fn symbol_bits(&self, value: i32) -> f64 {
         let idx = value as i64 - self.lo as i64;
-        let f = if idx >= 0 && (idx as usize) < self.support() { self.freqs[idx as usize] } else { self.freqs[self.support()] };
+        let f = if idx >= 0 && (idx as usize) < self.support() {
+            self.freqs[idx as usize]
+        } else {
+            self.freqs[self.support()]
+        };
         PRECISION as f64 - (f as f64).log2()
     }
 }
@@ -61,11 +65,8 @@ pub fn quantize_probabilities(p: &[f64], escape: f64) -> Vec<u32> {
     let n = p.len() + 1;
     let total = TOTAL as f64;
     let mass: f64 = p.iter().sum::<f64>() + escape;
-    let mut freqs: Vec<u32> = p
-        .iter()
-        .chain(std::iter::once(&escape))
-        .map(|&q| ((q / mass) * total).floor().max(1.0) as u32)
-        .collect();
+    let mut freqs: Vec<u32> =
+        p.iter().chain(std::iter::once(&escape)).map(|&q| ((q / mass) * total).floor().max(1.0) as u32).collect();
     let mut sum: i64 = freqs.iter().map(|&f| f as i64).sum();
     // Hand the rounding remainder to (or take it from) the largest entries.
     let mut order: Vec<usize> = (0..n).collect();

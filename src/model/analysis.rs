@@ -22,7 +22,8 @@ impl Analysis {
         let mut convs = Vec::new();
         let mut gdns = Vec::new();
         for i in 0..4 {
-            let cfg = ConvConfig { in_channels: chans[i], out_channels: chans[i + 1], kernel: c.analysis_kernel, stride: 2 };
+            let cfg =
+                ConvConfig { in_channels: chans[i], out_channels: chans[i + 1], kernel: c.analysis_kernel, stride: 2 };
             convs.push(Conv::new(cfg, vb.pp((2 * i).to_string()))?);
             if i < 3 {
                 gdns.push(Gdn::new(c.n, GdnDirection::Forward, vb.pp((2 * i + 1).to_string()))?);

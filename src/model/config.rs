@@ -77,7 +77,7 @@ impl ModelConfig {
         if self.n > 1024 || self.m > 1024 || self.nz > 1024 || self.hyper_hidden > 1024 {
             return bad("channel counts above 1024 are not supported");
         }
-        if self.analysis_kernel % 2 == 0 || self.synthesis_kernel % 2 == 0 {
+        if self.analysis_kernel.is_multiple_of(2) || self.synthesis_kernel.is_multiple_of(2) {
             return bad("kernel sizes must be odd");
         }
         if self.analysis_kernel > 9 || self.synthesis_kernel > 9 {

@@ -35,10 +35,18 @@ impl FactorizedDensity {
         let k_layers = f.len() - 1;
         let (mut matrices, mut biases, mut factors) = (vec![], vec![], vec![]);
         for k in 0..k_layers {
-            matrices.push(vb.pp("matrix").get_with_hints((channels, f[k + 1], f[k]), &k.to_string(), Init::Const(0.0))?);
+            matrices.push(vb.pp("matrix").get_with_hints(
+                (channels, f[k + 1], f[k]),
+                &k.to_string(),
+                Init::Const(0.0),
+            )?);
             biases.push(vb.pp("bias").get_with_hints((channels, f[k + 1], 1), &k.to_string(), Init::Const(0.0))?);
             if k + 1 < k_layers {
-                factors.push(vb.pp("factor").get_with_hints((channels, f[k + 1], 1), &k.to_string(), Init::Const(0.0))?);
+                factors.push(vb.pp("factor").get_with_hints(
+                    (channels, f[k + 1], 1),
+                    &k.to_string(),
+                    Init::Const(0.0),
+                )?);
             }
         }
         Ok(FactorizedDensity { matrices, biases, factors, channels })

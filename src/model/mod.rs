@@ -165,7 +165,11 @@ impl Model {
         for (name, var) in self.named_vars() {
             let t = tensors.get(&name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?;
             if t.dims() != var.dims() {
-                return Err(KilnError::BadModel(format!("weight {name} has shape {:?}, expected {:?}", t.dims(), var.dims())));
+                return Err(KilnError::BadModel(format!(
+                    "weight {name} has shape {:?}, expected {:?}",
+                    t.dims(),
+                    var.dims()
+                )));
             }
             var.set(&t.to_dtype(DType::F32)?)?;
         }
@@ -285,7 +289,9 @@ impl ModelFile {
     /// Parses model-file bytes.
     pub fn from_bytes(bytes: &[u8]) -> Result<Self> {
         if bytes.is_empty() {
-            return Err(KilnError::BadModel("the model file is empty (is a default model embedded in this build?)".into()));
+            return Err(KilnError::BadModel(
+                "the model file is empty (is a default model embedded in this build?)".into(),
+            ));
         }
         let (_, meta) = safetensors::SafeTensors::read_metadata(bytes)
             .map_err(|e| KilnError::BadModel(format!("not a safetensors file: {e}")))?;

@@ -51,7 +51,8 @@ impl CheckpointMeta {
 
 /// Writes a checkpoint atomically.
 pub fn save(path: &Path, model: &Model, optimizer: HashMap<String, Tensor>, meta: &CheckpointMeta) -> Result<()> {
-    let mut tensors: Vec<(String, Tensor)> = model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
+    let mut tensors: Vec<(String, Tensor)> =
+        model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
     tensors.extend(optimizer);
     tensors.sort_by(|a, b| a.0.cmp(&b.0));
     let metadata = HashMap::from([
@@ -72,7 +73,7 @@ pub fn load(path: &Path) -> Result<(CheckpointMeta, HashMap<String, Tensor>)> {
     if meta.get("kiln.format").map(String::as_str) != Some(CHECKPOINT_FORMAT) {
         return Err(bad("format tag missing".into()));
     }
-    let m: CheckpointMeta =
-        serde_json::from_str(meta.get("kiln.checkpoint").map(String::as_str).unwrap_or("")).map_err(|e| bad(e.to_string()))?;
+    let m: CheckpointMeta = serde_json::from_str(meta.get("kiln.checkpoint").map(String::as_str).unwrap_or(""))
+        .map_err(|e| bad(e.to_string()))?;
     Ok((m, candle_core::safetensors::load_buffer(&bytes, &Device::Cpu)?))
 }

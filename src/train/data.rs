@@ -70,7 +70,10 @@ impl ImageSet {
 
     /// Wraps already decoded RGB pictures.
     pub fn from_pictures(images: Vec<Picture>) -> Self {
-        ImageSet { images: images.into_iter().map(|p| Picture { data: p.to_rgb(), channels: 3, ..p }).collect(), skipped: vec![] }
+        ImageSet {
+            images: images.into_iter().map(|p| Picture { data: p.to_rgb(), channels: 3, ..p }).collect(),
+            skipped: vec![],
+        }
     }
 
     /// Number of usable images.

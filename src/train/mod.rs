@@ -157,10 +157,13 @@ fn uniform_noise(rng: &mut ChaCha8Rng, shape: &[usize]) -> Result<Tensor> {
 
 /// Trains (or resumes, or fine-tunes) and exports the model to `o.out`.
 pub fn train(o: &TrainOptions) -> Result<TrainReport> {
-    if o.patch == 0 || o.patch % HYPER_STRIDE != 0 {
-        return Err(KilnError::InvalidArgument(format!("--patch {} must be a positive multiple of {HYPER_STRIDE}", o.patch)));
+    if o.patch == 0 || !o.patch.is_multiple_of(HYPER_STRIDE) {
+        return Err(KilnError::InvalidArgument(format!(
+            "--patch {} must be a positive multiple of {HYPER_STRIDE}",
+            o.patch
+        )));
     }
-    if o.batch == 0 || o.steps == 0 || !(o.lr > 0.0) {
+    if o.batch == 0 || o.steps == 0 || o.lr.is_nan() || o.lr <= 0.0 {
         return Err(KilnError::InvalidArgument("--batch, --steps and --lr must be positive".into()));
     }
     let data = ImageSet::load(&o.images, o.patch)?;
@@ -237,15 +240,16 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         bar.set_position(run.step);
         bar.set_message(format!("loss {:.3}  bpp {:.3}  PSNR {:.2} dB  {:.2} steps/s", a.0, a.1, a.2, rate));
         if !o.progress && (run.step % 50 == 0 || run.step == o.steps) {
-            eprintln!("step {}/{}  loss {:.4}  bpp {:.4}  PSNR {:.2} dB  {:.3} steps/s", run.step, o.steps, a.0, a.1, a.2, rate);
+            eprintln!(
+                "step {}/{}  loss {:.4}  bpp {:.4}  PSNR {:.2} dB  {:.3} steps/s",
+                run.step, o.steps, a.0, a.1, a.2, rate
+            );
         }
         if run.step % o.checkpoint_every == 0 {
             save_checkpoint(o, &run)?;
         }
-        if o.val_every > 0 && run.step % o.val_every == 0 {
-            if let Some(v) = &val {
-                report_validation(&run, o, v, &data, &bar)?;
-            }
+        if let Some(v) = val.as_ref().filter(|_| o.val_every > 0 && run.step % o.val_every == 0) {
+            report_validation(&run, o, v, &data, &bar)?;
         }
     }
     save_checkpoint(o, &run)?;
@@ -298,13 +302,23 @@ fn save_checkpoint(o: &TrainOptions, run: &Run) -> Result<()> {
     checkpoint::save(&o.checkpoint, &run.model, run.adam.state(), &meta)
 }
 
-fn report_validation(run: &Run, o: &TrainOptions, val: &ImageSet, data: &ImageSet, bar: &indicatif::ProgressBar) -> Result<()> {
+fn report_validation(
+    run: &Run,
+    o: &TrainOptions,
+    val: &ImageSet,
+    data: &ImageSet,
+    bar: &indicatif::ProgressBar,
+) -> Result<()> {
     let bytes = run.model.export(&summary(run, o, data))?;
     let codec = Codec::new(ModelFile::from_bytes(&bytes)?)?;
     let rows = validate(&codec, val, &[1.0, 50.0, 100.0])?;
     let text: Vec<String> = rows.iter().map(|(q, b, p)| format!("q{q}: {b:.3} bpp {p:.2} dB")).collect();
     let line = format!("validation at step {}: {}", run.step, text.join(", "));
-    if bar.is_hidden() { eprintln!("{line}") } else { bar.println(line) }
+    if bar.is_hidden() {
+        eprintln!("{line}")
+    } else {
+        bar.println(line)
+    }
     Ok(())
 }
 
@@ -320,4 +334,3 @@ fn progress_bar(o: &TrainOptions, start: u64) -> indicatif::ProgressBar {
     bar.set_position(start);
     bar
 }
-

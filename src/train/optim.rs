@@ -87,11 +87,12 @@ impl Adam {
     /// Restores moments saved by [`Adam::state`]; missing entries stay zero.
     pub fn load_state(&mut self, tensors: &HashMap<String, Tensor>, t: u64) {
         for (i, (name, _)) in self.vars.iter().enumerate() {
-            if let (Some(m), Some(v)) = (tensors.get(&format!("adam.m.{name}")), tensors.get(&format!("adam.v.{name}"))) {
-                if m.dims() == self.m[i].dims() && v.dims() == self.v[i].dims() {
-                    self.m[i] = m.clone();
-                    self.v[i] = v.clone();
-                }
+            if let (Some(m), Some(v)) = (tensors.get(&format!("adam.m.{name}")), tensors.get(&format!("adam.v.{name}")))
+                && m.dims() == self.m[i].dims()
+                && v.dims() == self.v[i].dims()
+            {
+                self.m[i] = m.clone();
+                self.v[i] = v.clone();
             }
         }
         self.t = t;

@@ -15,7 +15,12 @@ pub fn synthetic_picture(width: u32, height: u32, channels: u8, seed: u64) -> Pi
     let discs: Vec<(f32, f32, f32, [f32; 3])> = (0..6)
         .map(|i| {
             let f = (seed as f32 + i as f32 * 1.7).sin().abs();
-            (f * width as f32, (1.0 - f) * height as f32, 5.0 + 20.0 * f, [200.0 * f, 80.0 + 100.0 * f, 255.0 - 150.0 * f])
+            (
+                f * width as f32,
+                (1.0 - f) * height as f32,
+                5.0 + 20.0 * f,
+                [200.0 * f, 80.0 + 100.0 * f, 255.0 - 150.0 * f],
+            )
         })
         .collect();
     let mut data = Vec::with_capacity((width * height) as usize * channels as usize);
