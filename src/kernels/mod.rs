@@ -1,5 +1,7 @@
-//! CPU kernels: the fixed-order path that must give the same bits everywhere.
+//! CPU kernels: fast im2col + gemm convolution ([`conv`]) for training and the transforms, and
+//! the fixed-order path ([`fixed`]) that must give the same bits everywhere.
 
+pub mod conv;
 pub mod fixed;
 mod hyper_fixed;
 

@@ -48,7 +48,7 @@ impl Conv {
 impl Module for Conv {
     fn forward(&self, x: &Tensor) -> Result<Tensor> {
         let pad = self.config.kernel / 2;
-        let y = x.conv2d(&self.weight, pad, self.config.stride, 1, 1)?;
+        let y = crate::kernels::conv::conv2d_selected(x, &self.weight, self.config.stride, pad)?;
         y.broadcast_add(&self.bias.reshape((1, self.config.out_channels, 1, 1))?)
     }
 }

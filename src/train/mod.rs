@@ -134,7 +134,7 @@ fn start(o: &TrainOptions) -> Result<Run> {
         let model = Model::new(meta.config.clone(), o.seed)?;
         model.load_weights(&tensors)?;
         let mut adam = Adam::new(model.named_vars(), AdamConfig::default())?;
-        adam.load_state(&tensors, meta.step);
+        adam.load_state(&tensors, meta.step)?;
         eprintln!("resuming from {} at step {}", ck.display(), meta.step);
         return Ok(Run { model, adam, rng: meta.rng(), step: meta.step, init: meta.init, averages: meta.averages });
     }
@@ -222,7 +222,8 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
             return Err(KilnError::Diverged { step: run.step, loss: loss_v });
         }
         let grads = loss.backward()?;
-        let norm = run.adam.grad_norm(&grads)?;
+        let grads = run.adam.gradients(&grads)?;
+        let norm = Adam::grad_norm(&grads);
         let scale = if norm > o.clip { o.clip / norm } else { 1.0 };
         run.adam.step(&grads, learning_rate(o, run.step), scale)?;
         run.step += 1;
@@ -299,7 +300,7 @@ fn save_checkpoint(o: &TrainOptions, run: &Run) -> Result<()> {
         init: run.init.clone(),
         averages: run.averages,
     };
-    checkpoint::save(&o.checkpoint, &run.model, run.adam.state(), &meta)
+    checkpoint::save(&o.checkpoint, &run.model, run.adam.state()?, &meta)
 }
 
 fn report_validation(

@@ -1,9 +1,10 @@
-//! Adam with its moments kept as named tensors (so checkpoints can hold them), and gradient
-//! clipping by global norm.
+//! Adam with its moments kept per variable (so checkpoints can hold them), and gradient
+//! clipping by global norm. The update runs in plain Rust over each variable's values: one
+//! pass, instead of a dozen small tensor operations per variable.
 
 use std::collections::HashMap;
 
-use candle_core::{Tensor, Var, backprop::GradStore};
+use candle_core::{Device, Tensor, Var, backprop::GradStore};
 
 use crate::error::Result;
 
@@ -28,73 +29,81 @@ impl Default for AdamConfig {
 #[derive(Debug)]
 pub struct Adam {
     vars: Vec<(String, Var)>,
-    m: Vec<Tensor>,
-    v: Vec<Tensor>,
+    m: Vec<Vec<f32>>,
+    v: Vec<Vec<f32>>,
     /// Steps taken (for bias correction).
     pub t: u64,
     config: AdamConfig,
 }
 
+fn values(t: &Tensor) -> Result<Vec<f32>> {
+    Ok(t.flatten_all()?.to_vec1::<f32>()?)
+}
+
 impl Adam {
     /// Zero moments for `vars`.
     pub fn new(vars: Vec<(String, Var)>, config: AdamConfig) -> Result<Self> {
-        let m = vars.iter().map(|(_, v)| v.zeros_like()).collect::<candle_core::Result<Vec<_>>>()?;
+        let m: Vec<Vec<f32>> = vars.iter().map(|(_, v)| vec![0.0; v.elem_count()]).collect();
         let v = m.clone();
         Ok(Adam { vars, m, v, t: 0, config })
     }
 
-    /// Global L2 norm of the gradients.
-    pub fn grad_norm(&self, grads: &GradStore) -> Result<f64> {
-        let mut sq = 0.0f64;
-        for (_, var) in &self.vars {
-            if let Some(g) = grads.get(var.as_tensor()) {
-                sq += g.sqr()?.sum_all()?.to_scalar::<f32>()? as f64;
-            }
-        }
-        Ok(sq.sqrt())
+    /// The gradients of every variable that has one, flattened.
+    pub fn gradients(&self, grads: &GradStore) -> Result<Vec<Option<Vec<f32>>>> {
+        self.vars.iter().map(|(_, var)| grads.get(var.as_tensor()).map(values).transpose()).collect()
+    }
+
+    /// Global L2 norm of flattened gradients.
+    pub fn grad_norm(grads: &[Option<Vec<f32>>]) -> f64 {
+        grads.iter().flatten().flat_map(|g| g.iter()).map(|&x| (x as f64) * (x as f64)).sum::<f64>().sqrt()
     }
 
     /// One update with learning rate `lr`, gradients scaled by `grad_scale` (for clipping).
-    pub fn step(&mut self, grads: &GradStore, lr: f64, grad_scale: f64) -> Result<()> {
+    pub fn step(&mut self, grads: &[Option<Vec<f32>>], lr: f64, grad_scale: f64) -> Result<()> {
         self.t += 1;
         let c = self.config;
         let bc1 = 1.0 - c.beta1.powi(self.t as i32);
         let bc2 = 1.0 - c.beta2.powi(self.t as i32);
+        let (b1, b2, gs) = (c.beta1 as f32, c.beta2 as f32, grad_scale as f32);
+        let step = (lr / bc1) as f32;
+        let inv_bc2 = (1.0 / bc2) as f32;
         for (i, (_, var)) in self.vars.iter().enumerate() {
-            let Some(g) = grads.get(var.as_tensor()) else { continue };
-            let g = (g * grad_scale)?;
-            let m = ((&self.m[i] * c.beta1)? + (&g * (1.0 - c.beta1))?)?;
-            let v = ((&self.v[i] * c.beta2)? + (g.sqr()? * (1.0 - c.beta2))?)?;
-            let update = ((&m / bc1)? / ((&v / bc2)?.sqrt()? + c.eps)?)?;
-            var.set(&(var.as_tensor() - (update * lr)?)?)?;
-            // Detach, or every step's graph would stay reachable through the moments.
-            self.m[i] = m.detach();
-            self.v[i] = v.detach();
+            let Some(g) = &grads[i] else { continue };
+            let mut p = values(var.as_tensor())?;
+            let (m, v) = (&mut self.m[i], &mut self.v[i]);
+            for j in 0..p.len() {
+                let gj = g[j] * gs;
+                m[j] = b1 * m[j] + (1.0 - b1) * gj;
+                v[j] = b2 * v[j] + (1.0 - b2) * gj * gj;
+                p[j] -= step * m[j] / ((v[j] * inv_bc2).sqrt() + c.eps as f32);
+            }
+            var.set(&Tensor::from_vec(p, var.dims(), &Device::Cpu)?)?;
         }
         Ok(())
     }
 
     /// Moments as tensors named `adam.m.{var}` and `adam.v.{var}`.
-    pub fn state(&self) -> HashMap<String, Tensor> {
+    pub fn state(&self) -> Result<HashMap<String, Tensor>> {
         let mut out = HashMap::new();
-        for (i, (name, _)) in self.vars.iter().enumerate() {
-            out.insert(format!("adam.m.{name}"), self.m[i].clone());
-            out.insert(format!("adam.v.{name}"), self.v[i].clone());
+        for (i, (name, var)) in self.vars.iter().enumerate() {
+            out.insert(format!("adam.m.{name}"), Tensor::from_slice(&self.m[i], var.dims(), &Device::Cpu)?);
+            out.insert(format!("adam.v.{name}"), Tensor::from_slice(&self.v[i], var.dims(), &Device::Cpu)?);
         }
-        out
+        Ok(out)
     }
 
-    /// Restores moments saved by [`Adam::state`]; missing entries stay zero.
-    pub fn load_state(&mut self, tensors: &HashMap<String, Tensor>, t: u64) {
-        for (i, (name, _)) in self.vars.iter().enumerate() {
+    /// Restores moments saved by [`Adam::state`]; entries missing or of another shape stay zero.
+    pub fn load_state(&mut self, tensors: &HashMap<String, Tensor>, t: u64) -> Result<()> {
+        for (i, (name, var)) in self.vars.iter().enumerate() {
             if let (Some(m), Some(v)) = (tensors.get(&format!("adam.m.{name}")), tensors.get(&format!("adam.v.{name}")))
-                && m.dims() == self.m[i].dims()
-                && v.dims() == self.v[i].dims()
+                && m.dims() == var.dims()
+                && v.dims() == var.dims()
             {
-                self.m[i] = m.clone();
-                self.v[i] = v.clone();
+                self.m[i] = values(m)?;
+                self.v[i] = values(v)?;
             }
         }
         self.t = t;
+        Ok(())
     }
 }

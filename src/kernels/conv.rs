@@ -1,0 +1,184 @@
+//! Fast CPU convolution for training and decoding: im2col (multi-threaded, here) followed by
+//! candle's matrix product (gemm), with col2im as the backward pass of im2col so that candle's
+//! autograd differentiates the whole convolution.
+//!
+//! `conv2d(x, w)` = `W (O × C·k²) · cols(x) (B × C·k² × L)`, `L = H_out · W_out`. The gradients
+//! are two more matrix products (`dW = dY · colsᵀ`, `dcols = Wᵀ · dY`) and one col2im, instead
+//! of candle's transposed convolution.
+//!
+//! This is the fast path: its summation order follows gemm's blocking and threads, so it is
+//! used for `g_a`, `g_s` and training, never for the table-selecting hyper-synthesis (see
+//! [`super::fixed`]).
+
+use std::sync::atomic::{AtomicU8, Ordering};
+
+use candle_core::{CpuStorage, CustomOp1, Layout, Result, Shape, Tensor, bail};
+use rayon::prelude::*;
+
+/// Which implementation the model's convolution layers use.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ConvBackend {
+    /// im2col + gemm (this module): the default.
+    Fast,
+    /// candle's built-in `conv2d` (for comparison in benches).
+    Candle,
+}
+
+static BACKEND: AtomicU8 = AtomicU8::new(0);
+
+/// Selects the backend for the whole process (`KILN_CONV=candle` in the environment selects
+/// candle's at start-up of the command-line tool).
+pub fn set_backend(b: ConvBackend) {
+    BACKEND.store(matches!(b, ConvBackend::Candle) as u8, Ordering::Relaxed);
+}
+
+/// The backend in use.
+pub fn backend() -> ConvBackend {
+    if BACKEND.load(Ordering::Relaxed) == 1 { ConvBackend::Candle } else { ConvBackend::Fast }
+}
+
+/// Convolution through the selected backend.
+pub fn conv2d_selected(x: &Tensor, weight: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
+    match backend() {
+        ConvBackend::Fast => conv2d(x, weight, stride, pad),
+        ConvBackend::Candle => x.conv2d(weight, pad, stride, 1, 1),
+    }
+}
+
+/// Geometry of a square convolution.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Im2Col {
+    /// Kernel size.
+    pub k: usize,
+    /// Stride.
+    pub stride: usize,
+    /// Zero padding on every side.
+    pub pad: usize,
+}
+
+impl Im2Col {
+    /// Output height and width for an `h × w` input.
+    pub fn output_size(&self, h: usize, w: usize) -> (usize, usize) {
+        ((h + 2 * self.pad - self.k) / self.stride + 1, (w + 2 * self.pad - self.k) / self.stride + 1)
+    }
+
+    /// Output positions `ox0..ox1` whose tap `t` falls inside an input row of length `n`.
+    #[inline]
+    fn valid_range(&self, t: usize, n: usize, out: usize) -> (usize, usize) {
+        // ox·s + t − pad ≥ 0  and  ox·s + t − pad ≤ n − 1
+        let lo = self.pad.saturating_sub(t).div_ceil(self.stride);
+        let hi = if n + self.pad > t { ((n + self.pad - t - 1) / self.stride + 1).min(out) } else { 0 };
+        (lo.min(hi), hi)
+    }
+
+    /// Source index along one axis of output position `o` and tap `t`, if inside the input.
+    #[inline]
+    fn source(&self, o: usize, t: usize, n: usize) -> Option<usize> {
+        let i = (o * self.stride + t).checked_sub(self.pad)?;
+        (i < n).then_some(i)
+    }
+}
+
+fn contiguous_f32<'a>(storage: &'a CpuStorage, layout: &Layout) -> Result<&'a [f32]> {
+    let Some((start, end)) = layout.contiguous_offsets() else { bail!("im2col: input must be contiguous") };
+    Ok(&storage.as_slice::<f32>()?[start..end])
+}
+
+impl CustomOp1 for Im2Col {
+    fn name(&self) -> &'static str {
+        "kiln-im2col"
+    }
+
+    fn cpu_fwd(&self, storage: &CpuStorage, layout: &Layout) -> Result<(CpuStorage, Shape)> {
+        let (b, c, h, w) = layout.shape().dims4()?;
+        let x = contiguous_f32(storage, layout)?;
+        let (ho, wo) = self.output_size(h, w);
+        let (k, l) = (self.k, ho * wo);
+        let mut cols = vec![0f32; b * c * k * k * l];
+        // One row per (batch, channel, ky, kx): independent, so rows fill in parallel.
+        cols.par_chunks_mut(l).enumerate().for_each(|(row, out)| {
+            let kx = row % k;
+            let ky = (row / k) % k;
+            let plane = row / (k * k); // batch * c + channel
+            let src = &x[plane * h * w..(plane + 1) * h * w];
+            let (ox0, ox1) = self.valid_range(kx, w, wo);
+            for oy in 0..ho {
+                let Some(iy) = self.source(oy, ky, h) else { continue };
+                let srow = &src[iy * w..(iy + 1) * w];
+                let line = &mut out[oy * wo + ox0..oy * wo + ox1];
+                let first = ox0 * self.stride + kx - self.pad;
+                if self.stride == 1 {
+                    line.copy_from_slice(&srow[first..first + line.len()]);
+                } else {
+                    for (j, v) in line.iter_mut().enumerate() {
+                        *v = srow[first + j * self.stride];
+                    }
+                }
+            }
+        });
+        Ok((CpuStorage::F32(cols), Shape::from((b, c * k * k, l))))
+    }
+
+    fn bwd(&self, arg: &Tensor, _res: &Tensor, grad_res: &Tensor) -> Result<Option<Tensor>> {
+        let (_, _, h, w) = arg.dims4()?;
+        let op = Col2Im { geometry: *self, c: arg.dim(1)?, h, w };
+        Ok(Some(grad_res.contiguous()?.apply_op1_no_bwd(&op)?))
+    }
+}
+
+/// The adjoint of [`Im2Col`]: sums column entries back onto the image they came from.
+#[derive(Debug, Clone, Copy)]
+pub struct Col2Im {
+    geometry: Im2Col,
+    c: usize,
+    h: usize,
+    w: usize,
+}
+
+impl CustomOp1 for Col2Im {
+    fn name(&self) -> &'static str {
+        "kiln-col2im"
+    }
+
+    fn cpu_fwd(&self, storage: &CpuStorage, layout: &Layout) -> Result<(CpuStorage, Shape)> {
+        let (b, _, l) = layout.shape().dims3()?;
+        let g = self.geometry;
+        let cols = contiguous_f32(storage, layout)?;
+        let (ho, wo) = g.output_size(self.h, self.w);
+        if ho * wo != l {
+            bail!("col2im: {l} columns do not match a {ho}×{wo} output");
+        }
+        let (k, h, w) = (g.k, self.h, self.w);
+        let mut img = vec![0f32; b * self.c * h * w];
+        // One plane per (batch, channel); taps added in a fixed order.
+        img.par_chunks_mut(h * w).enumerate().for_each(|(plane, out)| {
+            for ky in 0..k {
+                for kx in 0..k {
+                    let row = &cols[((plane * k + ky) * k + kx) * l..((plane * k + ky) * k + kx + 1) * l];
+                    let (ox0, ox1) = g.valid_range(kx, w, wo);
+                    for oy in 0..ho {
+                        let Some(iy) = g.source(oy, ky, h) else { continue };
+                        let orow = &mut out[iy * w..(iy + 1) * w];
+                        let first = ox0 * g.stride + kx - g.pad;
+                        for (j, &v) in row[oy * wo + ox0..oy * wo + ox1].iter().enumerate() {
+                            orow[first + j * g.stride] += v;
+                        }
+                    }
+                }
+            }
+        });
+        Ok((CpuStorage::F32(img), Shape::from((b, self.c, h, w))))
+    }
+}
+
+/// Convolution of `x` `(B, C, H, W)` with `weight` `(O, C, k, k)`, zero padding `pad`, stride
+/// `stride`, via im2col and gemm; differentiable in both arguments.
+pub fn conv2d(x: &Tensor, weight: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
+    let (b, _, h, w) = x.dims4()?;
+    let (o, c, k, _) = weight.dims4()?;
+    let geometry = Im2Col { k, stride, pad };
+    let (ho, wo) = geometry.output_size(h, w);
+    let cols = x.contiguous()?.apply_op1(geometry)?; // (B, C·k², L)
+    let wm = weight.reshape((o, c * k * k))?;
+    wm.broadcast_matmul(&cols)?.reshape((b, o, ho, wo))
+}
