@@ -41,12 +41,12 @@ pub enum KilnError {
     #[error("invalid argument: {0}")]
     InvalidArgument(String),
     /// An I/O failure, with the path involved.
-    #[error("{path}: {source}")]
+    #[error("{}: {cause}", path.display())]
     Io {
         /// The file or folder involved.
         path: PathBuf,
-        /// The underlying error.
-        source: std::io::Error,
+        /// The underlying error (shown in the message, not chained, so it prints once).
+        cause: std::io::Error,
     },
     /// A tensor computation failed (a bug or an out-of-memory condition).
     #[error("tensor computation failed: {0}")]
@@ -69,6 +69,6 @@ pub type Result<T> = std::result::Result<T, KilnError>;
 impl KilnError {
     /// Wraps an I/O error with the path it concerns.
     pub fn io(path: impl Into<PathBuf>, source: std::io::Error) -> Self {
-        KilnError::Io { path: path.into(), source }
+        KilnError::Io { path: path.into(), cause: source }
     }
 }

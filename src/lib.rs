@@ -9,6 +9,7 @@ pub mod codec;
 pub mod container;
 pub mod entropy;
 pub mod error;
+pub mod eval;
 pub mod image_io;
 pub mod kernels;
 pub mod metrics;

@@ -1,6 +1,7 @@
 //! Argument definitions (clap) and dispatch; one file per command.
 
 mod compress;
+mod evaluate;
 mod inspect;
 mod train;
 
@@ -30,6 +31,8 @@ enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Measure rate–distortion against JPEG and PNG on folders of images.
+    Evaluate(evaluate::EvaluateArgs),
     /// Train, resume or fine-tune a model on folders of images.
     Train(Box<train::TrainArgs>),
 }
@@ -40,6 +43,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Compress(a) => compress::compress(a),
         Command::Decompress(a) => compress::decompress(a),
         Command::Inspect { file, json } => inspect::inspect(&file, json),
+        Command::Evaluate(a) => evaluate::evaluate(a),
         Command::Train(a) => train::train(*a),
     }
 }

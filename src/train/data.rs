@@ -12,11 +12,16 @@ use crate::image_io::{AlphaPolicy, Picture};
 /// Extensions looked at when walking folders.
 pub const IMAGE_EXTENSIONS: [&str; 9] = ["png", "jpg", "jpeg", "bmp", "tif", "tiff", "webp", "ppm", "pgm"];
 
-/// All image files under `dirs`, recursively, sorted (so runs are reproducible).
+/// All image files under `dirs` (folders searched recursively; files taken as given), sorted
+/// so runs are reproducible.
 pub fn list_images(dirs: &[PathBuf]) -> Result<Vec<PathBuf>> {
     let mut out = Vec::new();
     for d in dirs {
-        walk(d, &mut out)?;
+        if d.is_file() {
+            out.push(d.clone());
+        } else {
+            walk(d, &mut out)?;
+        }
     }
     out.sort();
     Ok(out)

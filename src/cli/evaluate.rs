@@ -1,0 +1,56 @@
+//! `kiln evaluate`.
+
+use std::path::PathBuf;
+
+use clap::Args;
+use kiln::eval::{DEFAULT_QUALITIES, EvalOptions, baselines::JPEG_QUALITIES};
+use kiln::{Codec, ModelFile};
+
+#[derive(Debug, Args)]
+pub struct EvaluateArgs {
+    /// Folders of images (searched recursively).
+    #[arg(required = true)]
+    dirs: Vec<PathBuf>,
+    /// Report folder (created if missing).
+    #[arg(long)]
+    out: PathBuf,
+    /// Model file (default: the embedded model).
+    #[arg(long)]
+    model: Option<PathBuf>,
+    /// Kiln qualities, comma-separated.
+    #[arg(long, value_delimiter = ',')]
+    qualities: Option<Vec<f32>>,
+    /// JPEG qualities, comma-separated.
+    #[arg(long, value_delimiter = ',')]
+    jpeg_qualities: Option<Vec<u8>>,
+    /// Images evaluated in parallel.
+    #[arg(long, default_value_t = 2)]
+    jobs: usize,
+}
+
+pub fn evaluate(a: EvaluateArgs) -> anyhow::Result<()> {
+    let qualities = a.qualities.unwrap_or_else(|| DEFAULT_QUALITIES.to_vec());
+    for &q in &qualities {
+        kiln::model::config::check_quality(q)?;
+    }
+    let codec = Codec::new(ModelFile::load(a.model.as_deref())?)?;
+    let opts = EvalOptions {
+        dirs: a.dirs,
+        out: a.out.clone(),
+        qualities,
+        jpeg_qualities: a.jpeg_qualities.unwrap_or_else(|| JPEG_QUALITIES.to_vec()),
+        jobs: a.jobs,
+        progress: true,
+    };
+    let s = kiln::eval::evaluate(&codec, &opts)?;
+    let pct = |v: Option<f64>| v.map(|v| format!("{:+.1}%", 100.0 * v)).unwrap_or_else(|| "n/a".into());
+    eprintln!("{} images, {} skipped", s.images, s.skipped.len());
+    if let Some(k) = s.mean_curves.get("kiln") {
+        for (q, bpp, psnr, _, ms) in k {
+            eprintln!("  kiln q{q:>5}: {bpp:.3} bpp  {psnr:.2} dB  MS-SSIM {ms:.4}");
+        }
+    }
+    eprintln!("BD-rate vs JPEG (4:2:0, optimized Huffman): {}  (negative = fewer bits)", pct(s.bd_rate_vs_jpeg));
+    eprintln!("report: {}", a.out.join("report.html").display());
+    Ok(())
+}
