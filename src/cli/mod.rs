@@ -1,5 +1,6 @@
 //! Argument definitions (clap) and dispatch; one file per command.
 
+mod archive;
 mod compress;
 mod evaluate;
 mod inspect;
@@ -33,6 +34,28 @@ enum Command {
     },
     /// Measure rate–distortion against JPEG and PNG on folders of images.
     Evaluate(evaluate::EvaluateArgs),
+    /// Compress a whole image tree into an archive with a SQLite catalog (resumable).
+    Pack(archive::PackArgs),
+    /// Decode every container of an archive and check it against the catalog and the sources.
+    Verify(archive::ArchiveArgs),
+    /// Decode an archive back to PNG files, mirroring paths.
+    Unpack {
+        #[command(flatten)]
+        archive: archive::ArchiveArgs,
+        /// Output folder.
+        out: PathBuf,
+    },
+    /// Totals of an archive.
+    Stats {
+        /// Archive folder.
+        dest: PathBuf,
+        /// Print JSON.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Catalog maintenance.
+    #[command(subcommand)]
+    Catalog(archive::CatalogCommand),
     /// Train, resume or fine-tune a model on folders of images.
     Train(Box<train::TrainArgs>),
 }
@@ -44,6 +67,11 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Decompress(a) => compress::decompress(a),
         Command::Inspect { file, json } => inspect::inspect(&file, json),
         Command::Evaluate(a) => evaluate::evaluate(a),
+        Command::Pack(a) => archive::pack(a),
+        Command::Verify(a) => archive::verify(a),
+        Command::Unpack { archive: a, out } => archive::unpack(a, out),
+        Command::Stats { dest, json } => archive::stats(dest, json),
+        Command::Catalog(c) => archive::catalog(c),
         Command::Train(a) => train::train(*a),
     }
 }

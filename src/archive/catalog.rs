@@ -1,0 +1,180 @@
+//! The archive catalog: one SQLite database per archive (or per shard), one row per packed file.
+
+use std::path::{Path, PathBuf};
+
+use rusqlite::{Connection, OptionalExtension, params};
+
+use crate::error::{KilnError, Result};
+
+/// File name of the merged catalog inside the archive folder.
+pub const CATALOG_FILE: &str = "catalog.sqlite";
+
+/// File name of shard `i` of `n`'s catalog.
+pub fn shard_file(i: u32, n: u32) -> String {
+    format!("catalog.shard-{i}-of-{n}.sqlite")
+}
+
+/// One packed file.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Entry {
+    /// Path relative to the source root, `/`-separated.
+    pub rel_path: String,
+    /// Source file size in bytes.
+    pub source_size: u64,
+    /// Source modification time, nanoseconds since the Unix epoch.
+    pub source_mtime_ns: i64,
+    /// SHA-256 (hex) of the decoded source pixels (see [`super::pixel_hash`]).
+    pub pixel_sha256: String,
+    /// Container path relative to the archive root.
+    pub container_path: String,
+    /// Container size in bytes.
+    pub container_size: u64,
+    /// Bytes of the same pixels as PNG (default compression).
+    pub png_size: u64,
+    /// Image width.
+    pub width: u32,
+    /// Image height.
+    pub height: u32,
+    /// Channels (1 or 3).
+    pub channels: u8,
+    /// Quality used.
+    pub quality: f64,
+    /// Bits per pixel of the container.
+    pub bpp: f64,
+    /// PSNR of the decoded result against the source, dB.
+    pub psnr: f64,
+    /// MS-SSIM of the decoded result against the source.
+    pub ms_ssim: f64,
+    /// Model fingerprint (hex).
+    pub model_fingerprint: String,
+    /// When it was packed (seconds since the Unix epoch).
+    pub packed_at: i64,
+}
+
+/// An open catalog.
+#[derive(Debug)]
+pub struct Catalog {
+    conn: Connection,
+    path: PathBuf,
+}
+
+fn db(path: &Path) -> impl Fn(rusqlite::Error) -> KilnError + '_ {
+    move |e| KilnError::InvalidArgument(format!("catalog {}: {e}", path.display()))
+}
+
+const COLUMNS: &str = "rel_path, source_size, source_mtime_ns, pixel_sha256, container_path, container_size, png_size, \
+                       width, height, channels, quality, bpp, psnr, ms_ssim, model_fingerprint, packed_at";
+
+impl Catalog {
+    /// Opens (creating if needed) the catalog at `path`.
+    pub fn open(path: &Path) -> Result<Self> {
+        let conn = Connection::open(path).map_err(db(path))?;
+        conn.execute_batch(
+            "PRAGMA journal_mode=WAL; PRAGMA synchronous=FULL;
+             CREATE TABLE IF NOT EXISTS files (
+               rel_path TEXT PRIMARY KEY, source_size INTEGER NOT NULL, source_mtime_ns INTEGER NOT NULL,
+               pixel_sha256 TEXT NOT NULL, container_path TEXT NOT NULL, container_size INTEGER NOT NULL,
+               png_size INTEGER NOT NULL, width INTEGER NOT NULL, height INTEGER NOT NULL, channels INTEGER NOT NULL,
+               quality REAL NOT NULL, bpp REAL NOT NULL, psnr REAL NOT NULL, ms_ssim REAL NOT NULL,
+               model_fingerprint TEXT NOT NULL, packed_at INTEGER NOT NULL);
+             CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);",
+        )
+        .map_err(db(path))?;
+        Ok(Catalog { conn, path: path.to_path_buf() })
+    }
+
+    /// Opens an existing catalog, failing with a hint if there is none.
+    pub fn open_existing(path: &Path) -> Result<Self> {
+        if !path.is_file() {
+            return Err(KilnError::InvalidArgument(format!(
+                "no catalog at {}\nhint: run `kiln pack` first, or `kiln catalog merge` after sharded runs",
+                path.display()
+            )));
+        }
+        Self::open(path)
+    }
+
+    /// Sets a metadata value.
+    pub fn set_meta(&self, key: &str, value: &str) -> Result<()> {
+        self.conn
+            .execute(
+                "INSERT INTO meta(key, value) VALUES (?1, ?2) ON CONFLICT(key) DO UPDATE SET value = ?2",
+                params![key, value],
+            )
+            .map_err(db(&self.path))?;
+        Ok(())
+    }
+
+    /// Reads a metadata value.
+    pub fn meta(&self, key: &str) -> Result<Option<String>> {
+        self.conn
+            .query_row("SELECT value FROM meta WHERE key = ?1", [key], |r| r.get(0))
+            .optional()
+            .map_err(db(&self.path))
+    }
+
+    /// Inserts or replaces an entry (one transaction).
+    pub fn put(&mut self, e: &Entry) -> Result<()> {
+        let tx = self.conn.transaction().map_err(db(&self.path))?;
+        tx.execute(
+            &format!("INSERT OR REPLACE INTO files ({COLUMNS}) VALUES (?1,?2,?3,?4,?5,?6,?7,?8,?9,?10,?11,?12,?13,?14,?15,?16)"),
+            params![
+                e.rel_path,
+                e.source_size as i64,
+                e.source_mtime_ns,
+                e.pixel_sha256,
+                e.container_path,
+                e.container_size as i64,
+                e.png_size as i64,
+                e.width,
+                e.height,
+                e.channels,
+                e.quality,
+                e.bpp,
+                e.psnr,
+                e.ms_ssim,
+                e.model_fingerprint,
+                e.packed_at
+            ],
+        )
+        .map_err(db(&self.path))?;
+        tx.commit().map_err(db(&self.path))
+    }
+
+    /// The entry for `rel_path`, if any.
+    pub fn get(&self, rel_path: &str) -> Result<Option<Entry>> {
+        self.conn
+            .query_row(&format!("SELECT {COLUMNS} FROM files WHERE rel_path = ?1"), [rel_path], row_to_entry)
+            .optional()
+            .map_err(db(&self.path))
+    }
+
+    /// Every entry, ordered by path.
+    pub fn all(&self) -> Result<Vec<Entry>> {
+        let mut st =
+            self.conn.prepare(&format!("SELECT {COLUMNS} FROM files ORDER BY rel_path")).map_err(db(&self.path))?;
+        let rows = st.query_map([], row_to_entry).map_err(db(&self.path))?;
+        rows.collect::<std::result::Result<Vec<_>, _>>().map_err(db(&self.path))
+    }
+}
+
+fn row_to_entry(r: &rusqlite::Row) -> rusqlite::Result<Entry> {
+    Ok(Entry {
+        rel_path: r.get(0)?,
+        source_size: r.get::<_, i64>(1)? as u64,
+        source_mtime_ns: r.get(2)?,
+        pixel_sha256: r.get(3)?,
+        container_path: r.get(4)?,
+        container_size: r.get::<_, i64>(5)? as u64,
+        png_size: r.get::<_, i64>(6)? as u64,
+        width: r.get(7)?,
+        height: r.get(8)?,
+        channels: r.get(9)?,
+        quality: r.get(10)?,
+        bpp: r.get(11)?,
+        psnr: r.get(12)?,
+        ms_ssim: r.get(13)?,
+        model_fingerprint: r.get(14)?,
+        packed_at: r.get(15)?,
+    })
+}

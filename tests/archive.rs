@@ -1,0 +1,168 @@
+//! Archive workflow: pack → verify → unpack, resumability after kill -9, shards and merge.
+
+mod common;
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+use common::{synthetic_picture, tiny_model_bytes};
+use sha2::{Digest, Sha256};
+
+fn kiln(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_kiln")).args(args).output().unwrap()
+}
+
+fn s(p: &Path) -> String {
+    p.display().to_string()
+}
+
+/// Every file under `root` with the SHA-256 of its bytes.
+fn tree_hashes(root: &Path) -> BTreeMap<PathBuf, String> {
+    let mut out = BTreeMap::new();
+    let mut stack = vec![root.to_path_buf()];
+    while let Some(d) = stack.pop() {
+        // Tolerant of files appearing and vanishing: a pack may be running.
+        let Ok(entries) = std::fs::read_dir(&d) else { continue };
+        for e in entries.flatten() {
+            let p = e.path();
+            if p.is_dir() {
+                stack.push(p);
+            } else if let Ok(bytes) = std::fs::read(&p) {
+                let h = Sha256::digest(bytes);
+                out.insert(p.strip_prefix(root).unwrap().to_path_buf(), kiln::model::hex_prefix(&h, 32));
+            }
+        }
+    }
+    out
+}
+
+fn source_tree(root: &Path, n: usize) {
+    source_tree_scaled(root, n, 1)
+}
+
+fn source_tree_scaled(root: &Path, n: usize, scale: u32) {
+    std::fs::create_dir_all(root.join("a/b")).unwrap();
+    std::fs::create_dir_all(root.join("c")).unwrap();
+    for i in 0..n {
+        let dir = ["", "a", "a/b", "c"][i % 4];
+        let (w, h) = [(70, 50), (64, 64), (33, 97), (101, 45)][i % 4];
+        let pic = synthetic_picture(w * scale, h * scale, if i % 3 == 2 { 1 } else { 3 }, i as u64);
+        std::fs::write(root.join(dir).join(format!("img{i:02}.png")), pic.to_png().unwrap()).unwrap();
+    }
+}
+
+fn setup(n: usize) -> (tempfile::TempDir, PathBuf, PathBuf) {
+    let tmp = tempfile::tempdir().unwrap();
+    let model = tmp.path().join("m.safetensors");
+    std::fs::write(&model, tiny_model_bytes(51)).unwrap();
+    let src = tmp.path().join("src");
+    source_tree(&src, n);
+    (tmp, model, src)
+}
+
+#[test]
+fn pack_verify_unpack_leaves_the_source_untouched_and_names_broken_files() {
+    let (tmp, model, src) = setup(6);
+    std::fs::write(src.join("a/broken.png"), b"\x89PNG truncated").unwrap();
+    let before = tree_hashes(&src);
+    let dest = tmp.path().join("archive");
+    let o = kiln(&["pack", &s(&src), &s(&dest), "--quality", "50", "--model", &s(&model)]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    assert!(err.contains("a/broken.png"), "{err}");
+    assert_eq!(before, tree_hashes(&src), "the source tree changed");
+    assert!(dest.join("a/b/img02.png.kiln").is_file() && dest.join("catalog.sqlite").is_file());
+
+    let o = kiln(&["verify", &s(&dest), "--model", &s(&model)]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let out = tmp.path().join("unpacked");
+    let o = kiln(&["unpack", &s(&dest), &s(&out), "--model", &s(&model)]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    for i in 0..6 {
+        let dir = ["", "a", "a/b", "c"][i % 4];
+        let img = image::open(out.join(dir).join(format!("img{i:02}.png"))).unwrap();
+        let orig = image::open(src.join(dir).join(format!("img{i:02}.png"))).unwrap();
+        assert_eq!((img.width(), img.height(), img.color()), (orig.width(), orig.height(), orig.color()));
+    }
+    let o = kiln(&["stats", &s(&dest), "--json"]);
+    let st: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
+    assert_eq!(st["files"].as_u64().unwrap(), 6);
+
+    // Damage a container: verify names it and exits 1.
+    let victim = dest.join("c/img03.png.kiln");
+    let mut b = std::fs::read(&victim).unwrap();
+    let last = b.len() - 10;
+    b[last] ^= 0x40;
+    std::fs::write(&victim, b).unwrap();
+    let o = kiln(&["verify", &s(&dest), "--model", &s(&model)]);
+    assert_eq!(o.status.code(), Some(1));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("c/img03.png"));
+    assert_eq!(before, tree_hashes(&src));
+}
+
+fn catalog_rows(dest: &Path) -> Vec<(String, String, u64)> {
+    let c = kiln::archive::catalog::Catalog::open_existing(&dest.join("catalog.sqlite")).unwrap();
+    c.all().unwrap().into_iter().map(|e| (e.rel_path, e.pixel_sha256, e.container_size)).collect()
+}
+
+#[test]
+fn a_killed_pack_resumes_to_the_same_result_without_temporary_files() {
+    let (tmp, model, _) = setup(0);
+    let src = tmp.path().join("big");
+    source_tree_scaled(&src, 16, 6); // large enough that the run is still going when killed
+    let reference = tmp.path().join("reference");
+    assert!(kiln(&["pack", &s(&src), &s(&reference), "--quality", "30", "--model", &s(&model)]).status.success());
+
+    let dest = tmp.path().join("archive");
+    let mut child = Command::new(env!("CARGO_BIN_EXE_kiln"))
+        .args(["pack", &s(&src), &s(&dest), "--quality", "30", "--model", &s(&model), "--jobs", "1"])
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    // Kill it once it has started writing containers.
+    let t0 = std::time::Instant::now();
+    while t0.elapsed().as_secs() < 20 && !tree_hashes(&dest).keys().any(|p| p.to_string_lossy().ends_with(".kiln")) {
+        std::thread::sleep(std::time::Duration::from_millis(2));
+    }
+    child.kill().unwrap(); // SIGKILL: no destructor, no cleanup runs
+    child.wait().unwrap();
+    let interrupted = kiln::archive::catalog::Catalog::open(&dest.join("catalog.sqlite")).unwrap().all().unwrap().len();
+    assert!(interrupted < 16, "the run finished before it could be killed ({interrupted} rows)");
+    let o = kiln(&["pack", &s(&src), &s(&dest), "--quality", "30", "--model", &s(&model)]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert_eq!(catalog_rows(&dest), catalog_rows(&reference));
+    let (a, b) = (tree_hashes(&dest), tree_hashes(&reference));
+    let containers = |t: &BTreeMap<PathBuf, String>| -> Vec<(PathBuf, String)> {
+        t.iter().filter(|(p, _)| p.to_string_lossy().ends_with(".kiln")).map(|(p, h)| (p.clone(), h.clone())).collect()
+    };
+    assert_eq!(containers(&a), containers(&b));
+    assert!(!a.keys().any(|p| p.to_string_lossy().contains(".kiln-tmp-")), "temporary files remain");
+    // A third run finds nothing to do.
+    let o = kiln(&["pack", &s(&src), &s(&dest), "--quality", "30", "--model", &s(&model)]);
+    assert!(String::from_utf8_lossy(&o.stderr).contains("packed 0, unchanged 16"));
+}
+
+#[test]
+fn shards_cover_every_file_once_and_merge_to_the_full_catalog() {
+    let (tmp, model, src) = setup(12);
+    let dest = tmp.path().join("archive");
+    let mut seen = Vec::new();
+    for i in 0..3 {
+        let shard = format!("{i}/3");
+        let o = kiln(&["pack", &s(&src), &s(&dest), "--quality", "20", "--model", &s(&model), "--shard", &shard]);
+        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        let c = kiln::archive::catalog::Catalog::open_existing(&dest.join(format!("catalog.shard-{i}-of-3.sqlite")))
+            .unwrap();
+        seen.extend(c.all().unwrap().into_iter().map(|e| e.rel_path));
+    }
+    seen.sort();
+    let mut unique = seen.clone();
+    unique.dedup();
+    assert_eq!(seen, unique, "a file was packed by two shards");
+    assert_eq!(seen.len(), 12);
+    assert!(kiln(&["catalog", "merge", &s(&dest)]).status.success());
+    assert_eq!(catalog_rows(&dest).len(), 12);
+    let o = kiln(&["verify", &s(&dest), "--model", &s(&model)]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+}
