@@ -1,9 +1,14 @@
 //! Seeded initial values for a new model, so that `kiln train --seed S` is reproducible.
 //!
 //! Rules by weight name: convolution weights uniform in `±1/√fan_in`, biases 0, GDN `beta` 1 and
-//! `gamma` uniform in `[0, 0.01)` (small, so the layer starts near `γ = 0.1·I`), gains 0 (unit
-//! gain), density matrices at [`FactorizedDensity::initial_matrix_value`], density biases uniform
-//! in `±½`, density factors 0.
+//! `gamma` uniform in `[0, 0.01)` (small, so the layer starts near `γ = 0.1·I`), density matrices
+//! at [`FactorizedDensity::initial_matrix_value`], density biases uniform in `±½`, density
+//! factors 0.
+//!
+//! Gains start spread by λ, so the quality setting acts from the first step: for uniform
+//! quantization under MSE the best step size scales as `λ^(−1/2)` (common practice from
+//! high-rate quantization theory), so anchor `i` starts at log-gain `½·ln(λ_i/λ_mid)` (and the
+//! inverse gains at its negative), with `λ_mid` the geometric mean of the anchors.
 
 use candle_core::{Result, Tensor};
 use candle_nn::VarMap;
@@ -13,7 +18,7 @@ use rand_chacha::ChaCha8Rng;
 use super::density::FactorizedDensity;
 
 /// Sets every variable of `varmap` from `seed`, visiting names in sorted order.
-pub fn initialize(varmap: &VarMap, seed: u64) -> Result<()> {
+pub fn initialize(varmap: &VarMap, lambdas: &[f64], seed: u64) -> Result<()> {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let data = varmap.data().lock().expect("varmap lock");
     let mut names: Vec<&String> = data.keys().collect();
@@ -22,10 +27,20 @@ pub fn initialize(varmap: &VarMap, seed: u64) -> Result<()> {
         let var = &data[name];
         let dims = var.dims().to_vec();
         let n: usize = dims.iter().product();
-        let values: Vec<f32> = initial_values(name, &dims, n, &mut rng);
+        let values: Vec<f32> = match name.strip_prefix("gain.") {
+            Some(kind) => initial_gains(kind, &dims, lambdas),
+            None => initial_values(name, &dims, n, &mut rng),
+        };
         var.set(&Tensor::from_vec(values, dims.as_slice(), var.device())?)?;
     }
     Ok(())
+}
+
+fn initial_gains(kind: &str, dims: &[usize], lambdas: &[f64]) -> Vec<f32> {
+    let mid = lambdas.iter().map(|l| l.ln()).sum::<f64>() / lambdas.len() as f64;
+    let sign = if kind.ends_with("_inv") { -1.0 } else { 1.0 };
+    let (rows, cols) = (dims[0], dims[1]);
+    (0..rows * cols).map(|i| (sign * 0.5 * (lambdas[i / cols].ln() - mid)) as f32).collect()
 }
 
 fn initial_values(name: &str, dims: &[usize], n: usize, rng: &mut ChaCha8Rng) -> Vec<f32> {

@@ -132,7 +132,7 @@ impl Model {
     /// A new model with seeded initial weights.
     pub fn new(config: ModelConfig, seed: u64) -> Result<Self> {
         let model = Self::build(config)?;
-        init::initialize(&model.varmap, seed)?;
+        init::initialize(&model.varmap, &model.config.lambdas, seed)?;
         Ok(model)
     }
 

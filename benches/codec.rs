@@ -1,0 +1,53 @@
+//! Encode and decode throughput of the embedded default model at three qualities on a 768×512
+//! photograph, with PNG and JPEG of the same image in the same groups (pixels/s).
+
+use criterion::{Criterion, Throughput, criterion_group, criterion_main};
+use kiln::eval::baselines::{decode_jpeg, encode_jpeg};
+use kiln::{AlphaPolicy, Codec, ModelFile, Picture};
+
+/// The 768×512 centre of a validation photograph if fetched (tools/fetch-corpus), else of the
+/// committed test photograph scaled up.
+fn photo() -> Picture {
+    let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+    let candidates = [root.join("corpus/val/Storm.png"), root.join("tests/fixtures/metrics/chelsea.png")];
+    let path = candidates.iter().find(|p| p.is_file()).expect("a photograph");
+    let img = image::open(path).unwrap().into_rgb8();
+    let img = if img.width() < 768 || img.height() < 512 {
+        image::imageops::resize(&img, 768.max(img.width()), 512.max(img.height()), image::imageops::FilterType::Lanczos3)
+    } else {
+        img
+    };
+    let (x, y) = ((img.width() - 768) / 2, (img.height() - 512) / 2);
+    let crop = image::imageops::crop_imm(&img, x, y, 768, 512).to_image();
+    Picture::from_dynamic(image::DynamicImage::ImageRgb8(crop), AlphaPolicy::Refuse).unwrap()
+}
+
+fn codec_benches(c: &mut Criterion) {
+    let pic = photo();
+    let px = (pic.width * pic.height) as u64;
+    let codec = Codec::new(ModelFile::load(None).expect("embedded default model")).unwrap();
+    let mut enc = c.benchmark_group("encode 768x512");
+    enc.throughput(Throughput::Elements(px));
+    enc.sample_size(10);
+    for q in [10.0, 50.0, 90.0] {
+        enc.bench_function(format!("kiln q{q}"), |b| b.iter(|| codec.encode(&pic, q).unwrap()));
+    }
+    enc.bench_function("jpeg q75 4:2:0", |b| b.iter(|| encode_jpeg(&pic.data, pic.width, pic.height, 75).unwrap()));
+    enc.bench_function("png best", |b| b.iter(|| pic.to_png().unwrap()));
+    enc.finish();
+    let mut dec = c.benchmark_group("decode 768x512");
+    dec.throughput(Throughput::Elements(px));
+    dec.sample_size(10);
+    for q in [10.0, 50.0, 90.0] {
+        let bytes = codec.encode(&pic, q).unwrap().bytes;
+        dec.bench_function(format!("kiln q{q}"), |b| b.iter(|| codec.decode(&bytes).unwrap()));
+    }
+    let jpeg = encode_jpeg(&pic.data, pic.width, pic.height, 75).unwrap();
+    dec.bench_function("jpeg q75 4:2:0", |b| b.iter(|| decode_jpeg(&jpeg, 3).unwrap()));
+    let png = pic.to_png().unwrap();
+    dec.bench_function("png", |b| b.iter(|| image::load_from_memory(&png).unwrap()));
+    dec.finish();
+}
+
+criterion_group!(benches, codec_benches);
+criterion_main!(benches);
