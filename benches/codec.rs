@@ -49,5 +49,9 @@ fn codec_benches(c: &mut Criterion) {
     dec.finish();
 }
 
-criterion_group!(benches, codec_benches);
+fn config() -> Criterion {
+    Criterion::default().warm_up_time(std::time::Duration::from_secs(1)).measurement_time(std::time::Duration::from_secs(3))
+}
+
+criterion_group! { name = benches; config = config(); targets = codec_benches }
 criterion_main!(benches);

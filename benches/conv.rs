@@ -87,5 +87,9 @@ fn training_step(c: &mut Criterion) {
     conv::set_backend(ConvBackend::Fast);
 }
 
-criterion_group!(benches, conv_benches, training_step);
+fn config() -> Criterion {
+    Criterion::default().warm_up_time(std::time::Duration::from_secs(1)).measurement_time(std::time::Duration::from_secs(3))
+}
+
+criterion_group! { name = benches; config = config(); targets = conv_benches, training_step }
 criterion_main!(benches);
