@@ -13,7 +13,12 @@ fn photo() -> Picture {
     let path = candidates.iter().find(|p| p.is_file()).expect("a photograph");
     let img = image::open(path).unwrap().into_rgb8();
     let img = if img.width() < 768 || img.height() < 512 {
-        image::imageops::resize(&img, 768.max(img.width()), 512.max(img.height()), image::imageops::FilterType::Lanczos3)
+        image::imageops::resize(
+            &img,
+            768.max(img.width()),
+            512.max(img.height()),
+            image::imageops::FilterType::Lanczos3,
+        )
     } else {
         img
     };
@@ -50,7 +55,9 @@ fn codec_benches(c: &mut Criterion) {
 }
 
 fn config() -> Criterion {
-    Criterion::default().warm_up_time(std::time::Duration::from_secs(1)).measurement_time(std::time::Duration::from_secs(3))
+    Criterion::default()
+        .warm_up_time(std::time::Duration::from_secs(1))
+        .measurement_time(std::time::Duration::from_secs(3))
 }
 
 criterion_group! { name = benches; config = config(); targets = codec_benches }

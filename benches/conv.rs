@@ -88,7 +88,9 @@ fn training_step(c: &mut Criterion) {
 }
 
 fn config() -> Criterion {
-    Criterion::default().warm_up_time(std::time::Duration::from_secs(1)).measurement_time(std::time::Duration::from_secs(3))
+    Criterion::default()
+        .warm_up_time(std::time::Duration::from_secs(1))
+        .measurement_time(std::time::Duration::from_secs(3))
 }
 
 criterion_group! { name = benches; config = config(); targets = conv_benches, training_step }

@@ -40,6 +40,8 @@ pub struct Encoded {
     pub bytes: Vec<u8>,
     /// Model information content of the coded symbols, `−Σ log2 p`.
     pub ideal_bits: f64,
+    /// The part of `ideal_bits` spent on hyper-latents.
+    pub ideal_bits_hyper: f64,
     /// Bits of the entropy-coded streams (container header and checksums excluded).
     pub coded_bits: u64,
 }
@@ -140,12 +142,13 @@ impl Codec {
         let (tw, th) = container::choose_tile_size(pic.width, pic.height);
         let mut records = Vec::new();
         let mut streams = Vec::new();
-        let mut ideal_bits = 0.0;
+        let (mut ideal_bits, mut ideal_bits_hyper) = (0.0, 0.0);
         for rect in container::tile_grid(pic.width, pic.height, tw, th) {
-            let (rec, s, bits) = self.encode_tile(pic, rect, &gains)?;
+            let (rec, s, (bits_z, bits_y)) = self.encode_tile(pic, rect, &gains)?;
             records.push(rec);
             streams.push(s);
-            ideal_bits += bits;
+            ideal_bits += bits_z + bits_y;
+            ideal_bits_hyper += bits_z;
         }
         let coded_bits = streams.iter().map(|s: &TileStreams| 32 * (s.hyper.len() + s.latent.len()) as u64).sum();
         let header = Header {
@@ -159,7 +162,7 @@ impl Codec {
             tile_height: th,
             tiles: records,
         };
-        Ok(Encoded { bytes: container::write(&header, &streams)?, ideal_bits, coded_bits })
+        Ok(Encoded { bytes: container::write(&header, &streams)?, ideal_bits, ideal_bits_hyper, coded_bits })
     }
 
     fn encode_tile(
@@ -167,7 +170,7 @@ impl Codec {
         pic: &Picture,
         rect: container::Rect,
         gains: &GainVectors,
-    ) -> Result<(TileRecord, TileStreams, f64)> {
+    ) -> Result<(TileRecord, TileStreams, (f64, f64))> {
         let model = &self.file.model;
         let tile = tile_tensor(pic, rect)?;
         let y = scale_channels(&model.g_a.forward(&tile.tensor)?, &gains.y)?;
@@ -187,7 +190,7 @@ impl Codec {
         }
         let (_, m, hy, wy) = y.dims4()?;
         debug_assert_eq!((hy, wy), (tile.padded_h / LATENT_STRIDE, tile.padded_w / LATENT_STRIDE));
-        let ideal = enc_z.ideal_bits() + enc_y.ideal_bits();
+        let ideal = (enc_z.ideal_bits(), enc_y.ideal_bits());
         let record = TileRecord {
             latent: [m as u16, hy as u16, wy as u16],
             hyper: [nz as u16, hz as u16, wz as u16],

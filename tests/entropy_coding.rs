@@ -112,7 +112,11 @@ fn coded_size_is_within_half_a_percent_of_the_information_content() {
         let ideal = enc.ideal_bits();
         let coded = 32.0 * enc.finish().len() as f64;
         let overhead = coded / ideal - 1.0;
-        println!("scale {:8.3}: ideal {ideal:10.0} bits, coded {coded:10.0} bits, overhead {:+.4}%", scales[k], 100.0 * overhead);
+        println!(
+            "scale {:8.3}: ideal {ideal:10.0} bits, coded {coded:10.0} bits, overhead {:+.4}%",
+            scales[k],
+            100.0 * overhead
+        );
         // At the smallest scale nearly every symbol is 0 and the whole stream is tiny, so
         // compare in absolute terms there (one 64-bit state flush).
         assert!(overhead < 0.005 || coded - ideal <= 64.0, "scale {}: coded {coded} vs ideal {ideal}", scales[k]);

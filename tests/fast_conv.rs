@@ -2,7 +2,7 @@
 //! and a finite-difference check of the gradient.
 
 use candle_core::{Device, Tensor, Var};
-use kiln::kernels::conv::conv2d;
+use kiln::kernels::conv::{conv2d, conv2d_channel_major};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
@@ -34,8 +34,10 @@ fn matches_candle_conv2d_forward_and_gradients() {
         let pad = k / 2;
         let x = Var::from_tensor(&random(&mut rng, &[b, ci, h, w])).unwrap();
         let wt = Var::from_tensor(&random(&mut rng, &[co, ci, k, k])).unwrap();
-        let ours = conv2d(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
         let theirs = x.as_tensor().conv2d(wt.as_tensor(), pad, s, 1, 1).unwrap();
+        let other = conv2d_channel_major(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
+        assert!(rel_err(&other, &theirs) <= 1e-5, "channel-major forward");
+        let ours = conv2d(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
         assert_eq!(ours.dims(), theirs.dims());
         assert!(rel_err(&ours, &theirs) <= 1e-5, "forward {:?}", (b, ci, co, h, w, k, s));
         // Same upstream gradient through both: compare dL/dx and dL/dw.

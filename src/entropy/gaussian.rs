@@ -17,7 +17,7 @@ pub const SCALE_MIN: f64 = 0.11;
 /// Largest scale in the table.
 pub const SCALE_MAX: f64 = 256.0;
 /// Number of scale entries.
-pub const SCALE_COUNT: usize = 64;
+pub const SCALE_COUNT: usize = 256;
 /// Support radius of each entry, in units of its scale.
 pub const TAIL_SIGMAS: f64 = 6.0;
 

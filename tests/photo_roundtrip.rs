@@ -1,0 +1,37 @@
+//! The whole path on a real photograph with the embedded default model: scikit-image's
+//! "chelsea" (CC0, from the PyPI package), compressed to a file and decompressed from it.
+
+use kiln::metrics::psnr;
+use kiln::{AlphaPolicy, Codec, ModelFile, Picture};
+
+fn photo() -> Picture {
+    let p = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/metrics/chelsea.png");
+    Picture::open(&p, AlphaPolicy::Refuse).unwrap()
+}
+
+#[test]
+fn photograph_round_trips_through_a_file_with_quality_ordered_results() {
+    let codec = Codec::new(ModelFile::load(None).expect("embedded default model")).unwrap();
+    let pic = photo();
+    let dir = tempfile::tempdir().unwrap();
+    let mut last: Option<(f64, f64)> = None;
+    for q in [1.0, 50.0, 100.0] {
+        let enc = codec.encode(&pic, q).unwrap();
+        let file = dir.path().join(format!("q{q}.kiln"));
+        kiln::image_io::write_atomic(&file, &enc.bytes).unwrap();
+        let dec = codec.decode(&std::fs::read(&file).unwrap()).unwrap();
+        assert_eq!((dec.width, dec.height, dec.channels), (pic.width, pic.height, pic.channels));
+        let bpp = enc.bytes.len() as f64 * 8.0 / (pic.width * pic.height) as f64;
+        let p = psnr(&pic.data, &dec.data);
+        println!("q{q}: {bpp:.3} bpp, {p:.2} dB");
+        if let Some((b0, p0)) = last {
+            assert!(bpp > b0, "q{q}: {bpp} bpp is not above the lower quality's {b0}");
+            assert!(p > p0, "q{q}: {p} dB is not above the lower quality's {p0}");
+        }
+        last = Some((bpp, p));
+        // The rate the model estimates agrees with the coded size within 2%.
+        let (by, bz) = codec.estimate_bits(&pic, q).unwrap();
+        let rel = (enc.coded_bits as f64 / (by + bz) - 1.0).abs();
+        assert!(rel < 0.02, "q{q}: estimated {:.0} bits, coded {}", by + bz, enc.coded_bits);
+    }
+}
