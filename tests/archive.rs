@@ -166,3 +166,47 @@ fn shards_cover_every_file_once_and_merge_to_the_full_catalog() {
     let o = kiln(&["verify", &s(&dest), "--model", &s(&model)]);
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
 }
+
+/// A smooth picture: gradients and soft shapes, little noise (reachable fidelity for any model).
+fn smooth_picture(w: u32, h: u32, seed: u64) -> kiln::Picture {
+    let mut data = Vec::with_capacity((w * h * 3) as usize);
+    let f = seed as f32 * 0.37;
+    for y in 0..h {
+        for x in 0..w {
+            let (u, v) = (x as f32 / w as f32, y as f32 / h as f32);
+            let blob = (-((u - 0.5 - 0.2 * f.sin()).powi(2) + (v - 0.5).powi(2)) * 12.0).exp();
+            data.push((70.0 + 120.0 * u + 40.0 * blob) as u8);
+            data.push((90.0 + 80.0 * v + 30.0 * (f + 3.0 * u).sin()) as u8);
+            data.push((120.0 + 60.0 * blob - 30.0 * v) as u8);
+        }
+    }
+    kiln::Picture { width: w, height: h, channels: 3, data }
+}
+
+#[test]
+fn target_psnr_holds_on_every_decoded_image() {
+    // The embedded default model, real weights.
+    let tmp = tempfile::tempdir().unwrap();
+    let src = tmp.path().join("src");
+    std::fs::create_dir_all(src.join("d")).unwrap();
+    for i in 0..4u64 {
+        let (w, h) = [(160, 120), (97, 131), (200, 64), (64, 64)][i as usize];
+        let sub = if i % 2 == 0 { "" } else { "d" };
+        std::fs::write(src.join(sub).join(format!("s{i}.png")), smooth_picture(w, h, i).to_png().unwrap()).unwrap();
+    }
+    let dest = tmp.path().join("archive");
+    let o = kiln(&["pack", &s(&src), &s(&dest), "--target-psnr", "34"]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let out = tmp.path().join("out");
+    assert!(kiln(&["unpack", &s(&dest), &s(&out)]).status.success());
+    let c = kiln::archive::catalog::Catalog::open_existing(&dest.join("catalog.sqlite")).unwrap();
+    let rows = c.all().unwrap();
+    assert_eq!(rows.len(), 4);
+    for e in rows {
+        let orig = kiln::Picture::open(&src.join(&e.rel_path), kiln::AlphaPolicy::Refuse).unwrap();
+        let back = kiln::Picture::open(&out.join(Path::new(&e.rel_path).with_extension("png")), kiln::AlphaPolicy::Refuse).unwrap();
+        let p = kiln::metrics::psnr(&orig.data, &back.data);
+        assert!(p >= 34.0, "{}: decoded PSNR {p:.2} dB below the 34 dB target", e.rel_path);
+        assert!((p - e.psnr).abs() < 1e-9, "catalog PSNR {} differs from the decoded {p}", e.psnr);
+    }
+}

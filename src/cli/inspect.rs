@@ -46,7 +46,7 @@ fn model_json(bytes: &[u8]) -> anyhow::Result<serde_json::Value> {
     let (enc, dec) = f.model.macs_per_pixel();
     let c = &f.model.config;
     let anchors: Vec<_> =
-        (0..c.anchors()).map(|i| json!({"quality": c.anchor_quality(i), "lambda": c.lambdas[i]})).collect();
+        (0..c.anchors()).map(|i| json!({"quality": (c.anchor_quality(i) as f64 * 100.0).round() / 100.0, "lambda": c.lambdas[i]})).collect();
     Ok(json!({
         "kind": "model",
         "bytes": f.size,
