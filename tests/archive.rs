@@ -204,7 +204,9 @@ fn target_psnr_holds_on_every_decoded_image() {
     assert_eq!(rows.len(), 4);
     for e in rows {
         let orig = kiln::Picture::open(&src.join(&e.rel_path), kiln::AlphaPolicy::Refuse).unwrap();
-        let back = kiln::Picture::open(&out.join(Path::new(&e.rel_path).with_extension("png")), kiln::AlphaPolicy::Refuse).unwrap();
+        let back =
+            kiln::Picture::open(&out.join(Path::new(&e.rel_path).with_extension("png")), kiln::AlphaPolicy::Refuse)
+                .unwrap();
         let p = kiln::metrics::psnr(&orig.data, &back.data);
         assert!(p >= 34.0, "{}: decoded PSNR {p:.2} dB below the 34 dB target", e.rel_path);
         assert!((p - e.psnr).abs() < 1e-9, "catalog PSNR {} differs from the decoded {p}", e.psnr);

@@ -107,3 +107,46 @@ fn training_refuses_a_folder_without_usable_images() {
     let err = train(&options(tmp.path(), tmp.path().join("m.safetensors"), 5)).unwrap_err();
     assert!(err.to_string().contains("no usable training images"), "{err}");
 }
+
+#[test]
+fn ctrl_c_checkpoints_exports_and_resumes() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    write_images(&tmp.path().join("imgs"));
+    let out = tmp.path().join("m.safetensors");
+    let ckpt = tmp.path().join("m.ckpt");
+    let args = |steps: &str| -> Vec<String> {
+        let mut v: Vec<String> =
+            ["train", "--config", "tiny", "--batch", "2", "--patch", "64", "--log", "--checkpoint-every", "5"]
+                .iter()
+                .map(|s| s.to_string())
+                .collect();
+        v.extend(["--steps".into(), steps.into(), "--images".into(), tmp.path().join("imgs").display().to_string()]);
+        v.extend(["--out".into(), out.display().to_string(), "--checkpoint".into(), ckpt.display().to_string()]);
+        v
+    };
+    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_kiln"))
+        .args(args("1000000"))
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    let t0 = std::time::Instant::now();
+    while !ckpt.exists() && t0.elapsed().as_secs() < 60 {
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    assert!(ckpt.exists(), "no checkpoint within 60 s");
+    let ok = std::process::Command::new("kill").args(["-INT", &child.id().to_string()]).status().unwrap();
+    assert!(ok.success());
+    let o = child.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{err}");
+    assert!(err.contains("--resume"), "{err}");
+    let stopped = ModelFile::load(Some(&out)).unwrap().training.steps;
+    assert!(stopped > 0 && stopped < 1_000_000);
+    // Resume to a few steps past where it stopped.
+    let mut a = args(&(stopped + 3).to_string());
+    a.extend(["--resume".into(), ckpt.display().to_string()]);
+    let o = std::process::Command::new(env!("CARGO_BIN_EXE_kiln")).args(&a).output().unwrap();
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert_eq!(ModelFile::load(Some(&out)).unwrap().training.steps, stopped + 3);
+}

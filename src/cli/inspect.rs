@@ -45,8 +45,9 @@ fn model_json(bytes: &[u8]) -> anyhow::Result<serde_json::Value> {
     let f = ModelFile::from_bytes(bytes)?;
     let (enc, dec) = f.model.macs_per_pixel();
     let c = &f.model.config;
-    let anchors: Vec<_> =
-        (0..c.anchors()).map(|i| json!({"quality": (c.anchor_quality(i) as f64 * 100.0).round() / 100.0, "lambda": c.lambdas[i]})).collect();
+    let anchors: Vec<_> = (0..c.anchors())
+        .map(|i| json!({"quality": (c.anchor_quality(i) as f64 * 100.0).round() / 100.0, "lambda": c.lambdas[i]}))
+        .collect();
     Ok(json!({
         "kind": "model",
         "bytes": f.size,
