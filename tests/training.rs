@@ -125,7 +125,7 @@ fn ctrl_c_checkpoints_exports_and_resumes() {
         v.extend(["--out".into(), out.display().to_string(), "--checkpoint".into(), ckpt.display().to_string()]);
         v
     };
-    let mut child = std::process::Command::new(env!("CARGO_BIN_EXE_kiln"))
+    let child = std::process::Command::new(env!("CARGO_BIN_EXE_kiln"))
         .args(args("1000000"))
         .stderr(std::process::Stdio::piped())
         .spawn()
