@@ -36,6 +36,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         val_every: 0,
         clip: 5.0,
         decay_from: 0.8,
+        distortion: kiln::train::Distortion::Mse,
         stop_after: None,
         progress: false,
     }
@@ -149,4 +150,42 @@ fn ctrl_c_checkpoints_exports_and_resumes() {
     let o = std::process::Command::new(env!("CARGO_BIN_EXE_kiln")).args(&a).output().unwrap();
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     assert_eq!(ModelFile::load(Some(&out)).unwrap().training.steps, stopped + 3);
+}
+
+#[test]
+fn training_ms_ssim_matches_the_reference_checked_metric() {
+    use candle_core::{Device, Tensor};
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/metrics");
+    let a = kiln::Picture::open(&dir.join("chelsea.png"), kiln::AlphaPolicy::Refuse).unwrap();
+    let b = kiln::Picture::open(&dir.join("chelsea-jpeg20.png"), kiln::AlphaPolicy::Refuse).unwrap();
+    let (w, h) = (a.width as usize, a.height as usize);
+    let planar = |p: &kiln::Picture| {
+        let mut v = vec![0f32; 3 * w * h];
+        for i in 0..w * h {
+            for c in 0..3 {
+                v[c * w * h + i] = p.data[i * 3 + c] as f32;
+            }
+        }
+        Tensor::from_vec(v, (1, 3, h, w), &Device::Cpu).unwrap()
+    };
+    let got =
+        kiln::train::distortion::ms_ssim_per_sample(&planar(&b), &planar(&a)).unwrap().to_vec1::<f32>().unwrap()[0];
+    let want = kiln::metrics::ms_ssim(&a.data, &b.data, w, h, 3);
+    assert!((got as f64 - want).abs() < 1e-3, "training MS-SSIM {got} vs metric {want}");
+}
+
+#[test]
+fn tiny_model_trains_with_ms_ssim_distortion() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    write_images(&tmp.path().join("imgs"));
+    let mut o = options(tmp.path(), tmp.path().join("m.safetensors"), 40);
+    o.distortion = kiln::train::Distortion::MsSsim;
+    let report = train(&o).unwrap();
+    assert!(report.losses.iter().all(|l| l.is_finite()));
+    let first: f64 = report.losses[..8].iter().sum::<f64>() / 8.0;
+    let last: f64 = report.losses[32..].iter().sum::<f64>() / 8.0;
+    assert!(last < first, "loss did not decrease: {first} → {last}");
+    let f = ModelFile::load(Some(&o.out)).unwrap();
+    assert_eq!(f.training.distortion, kiln::train::Distortion::MsSsim);
 }

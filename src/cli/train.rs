@@ -56,6 +56,9 @@ pub struct TrainArgs {
     /// Fraction of the run after which the learning rate drops tenfold.
     #[arg(long, default_value_t = 0.8)]
     decay_from: f64,
+    /// Distortion term of the objective.
+    #[arg(long, value_enum, default_value = "mse")]
+    distortion: kiln::train::Distortion,
     /// Stop after this many steps of this invocation (checkpoint and export; resume later).
     #[arg(long)]
     stop_after: Option<u64>,
@@ -97,6 +100,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         val_every: a.val_every,
         clip: a.clip,
         decay_from: a.decay_from,
+        distortion: a.distortion,
         stop_after: a.stop_after,
         progress: !a.log,
     };

@@ -86,6 +86,9 @@ pub struct TrainingSummary {
     pub final_bpp: Option<f64>,
     /// Final training PSNR in dB (moving average).
     pub final_psnr: Option<f64>,
+    /// Distortion the objective used.
+    #[serde(default)]
+    pub distortion: crate::train::Distortion,
     /// Free-form note.
     pub note: String,
 }

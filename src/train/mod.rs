@@ -8,6 +8,7 @@
 
 pub mod checkpoint;
 pub mod data;
+pub mod distortion;
 pub mod optim;
 
 use std::path::PathBuf;
@@ -26,6 +27,7 @@ use crate::model::config::HYPER_STRIDE;
 use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix};
 use checkpoint::CheckpointMeta;
 use data::ImageSet;
+pub use distortion::Distortion;
 use optim::{Adam, AdamConfig};
 
 /// Where the initial weights come from.
@@ -70,6 +72,8 @@ pub struct TrainOptions {
     pub clip: f64,
     /// Fraction of the run after which the learning rate drops tenfold.
     pub decay_from: f64,
+    /// What the objective measures as distortion.
+    pub distortion: Distortion,
     /// Stop (checkpoint and export) after this many steps of this invocation, to train in
     /// time-boxed chunks; `--resume` continues on the same schedule.
     pub stop_after: Option<u64>,
@@ -214,8 +218,9 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         let out = run.model.forward_train(&x, &idx, &wts, &ny, &nz)?;
         let pixels = (p * p) as f64;
         let bpp = ((&out.bits_y + &out.bits_z)? / pixels)?;
-        let mse = ((&out.x_hat - &x)? * 255.0)?.sqr()?.reshape((o.batch, ()))?.mean(1)?;
-        let loss = (&bpp + (&mse * &lam)?)?.mean(0)?;
+        let dist = o.distortion.per_sample(&out.x_hat, &x)?;
+        let loss = (&bpp + ((&dist * &lam)? * o.distortion.lambda_scale())?)?.mean(0)?;
+        let mse = ((&out.x_hat - &x)? * 255.0)?.sqr()?.mean_all()?.detach();
         let loss_v = loss.to_scalar::<f32>()?;
         if !loss_v.is_finite() {
             bar.abandon();
@@ -228,7 +233,7 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         run.adam.step(&grads, learning_rate(o, run.step), scale)?;
         run.step += 1;
         let bpp_v = bpp.mean(0)?.to_scalar::<f32>()? as f64;
-        let mse_v = mse.mean(0)?.to_scalar::<f32>()? as f64;
+        let mse_v = mse.to_scalar::<f32>()? as f64;
         let psnr_v = 10.0 * (255.0f64.powi(2) / mse_v.max(1e-10)).log10();
         let cur = (loss_v as f64, bpp_v, psnr_v);
         run.averages = Some(match run.averages {
@@ -285,6 +290,7 @@ fn summary(run: &Run, o: &TrainOptions, data: &ImageSet) -> TrainingSummary {
         final_loss: a.map(|a| a.0),
         final_bpp: a.map(|a| a.1),
         final_psnr: a.map(|a| a.2),
+        distortion: o.distortion,
         note: String::new(),
     }
 }
