@@ -1,5 +1,6 @@
 use candle_core::{Device, Tensor, Var};
 use kiln::kernels::conv::{conv2d, conv2d_channel_major};
+use kiln::kernels::fused_conv::conv2d_fused;
 use std::time::Instant;
 fn t<F: FnMut()>(label: &str, mut f: F) {
     f();
@@ -24,6 +25,9 @@ fn main() {
         let name = format!("{ci}->{co} k{k} s{st} @{sz}");
         t(&format!("{name} patch fwd+bwd"), || {
             conv2d(x.as_tensor(), w.as_tensor(), st, k / 2).unwrap().sum_all().unwrap().backward().unwrap();
+        });
+        t(&format!("{name} fused fwd+bwd"), || {
+            conv2d_fused(x.as_tensor(), w.as_tensor(), st, k / 2).unwrap().sum_all().unwrap().backward().unwrap();
         });
         t(&format!("{name} chan  fwd+bwd"), || {
             conv2d_channel_major(x.as_tensor(), w.as_tensor(), st, k / 2)

@@ -3,6 +3,7 @@
 
 use candle_core::{Device, Tensor, Var};
 use kiln::kernels::conv::{conv2d, conv2d_channel_major};
+use kiln::kernels::fused_conv::conv2d_fused;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 
@@ -37,6 +38,15 @@ fn matches_candle_conv2d_forward_and_gradients() {
         let theirs = x.as_tensor().conv2d(wt.as_tensor(), pad, s, 1, 1).unwrap();
         let other = conv2d_channel_major(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
         assert!(rel_err(&other, &theirs) <= 1e-5, "channel-major forward");
+        let fused = conv2d_fused(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
+        assert!(rel_err(&fused, &theirs) <= 1e-5, "fused forward");
+        let g = random(&mut rng, fused.dims());
+        let gf = (&fused * &g).unwrap().sum_all().unwrap().backward().unwrap();
+        let gc = (&theirs * &g).unwrap().sum_all().unwrap().backward().unwrap();
+        for v in [&x, &wt] {
+            let (a, c) = (gf.get(v.as_tensor()).unwrap(), gc.get(v.as_tensor()).unwrap());
+            assert!(rel_err(a, c) <= 1e-5, "fused gradient {:?}: {}", (b, ci, co, h, w, k, s), rel_err(a, c));
+        }
         let ours = conv2d(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
         assert_eq!(ours.dims(), theirs.dims());
         assert!(rel_err(&ours, &theirs) <= 1e-5, "forward {:?}", (b, ci, co, h, w, k, s));

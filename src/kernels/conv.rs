@@ -1,6 +1,8 @@
-//! Fast CPU convolution for training and decoding: im2col (multi-threaded, here) followed by
-//! candle's matrix product (gemm), with col2im as the backward pass of im2col so that candle's
-//! autograd differentiates the whole convolution.
+//! Convolution building blocks: im2col in two layouts (channel-major columns and NHWC patch
+//! rows) followed by candle's matrix product, with their adjoints as backward passes so candle's
+//! autograd differentiates the whole convolution; and the backend switch. The fastest variant,
+//! used by the model, is the fused operation in [`super::fused_conv`]; the variants here are
+//! kept as references and for the benches.
 //!
 //! `conv2d(x, w)` = `W (O × C·k²) · cols(x) (B × C·k² × L)`, `L = H_out · W_out`. The gradients
 //! are two more matrix products (`dW = dY · colsᵀ`, `dcols = Wᵀ · dY`) and one col2im, instead
@@ -18,7 +20,7 @@ use rayon::prelude::*;
 /// Which implementation the model's convolution layers use.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ConvBackend {
-    /// im2col + gemm (this module): the default.
+    /// The fused patch-rows + gemm convolution ([`super::fused_conv`]): the default.
     Fast,
     /// candle's built-in `conv2d` (for comparison in benches).
     Candle,
@@ -40,7 +42,7 @@ pub fn backend() -> ConvBackend {
 /// Convolution through the selected backend.
 pub fn conv2d_selected(x: &Tensor, weight: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
     match backend() {
-        ConvBackend::Fast => conv2d(x, weight, stride, pad),
+        ConvBackend::Fast => super::fused_conv::conv2d_fused(x, weight, stride, pad),
         ConvBackend::Candle => x.conv2d(weight, pad, stride, 1, 1),
     }
 }

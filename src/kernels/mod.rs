@@ -3,6 +3,7 @@
 
 pub mod conv;
 pub mod fixed;
+pub mod fused_conv;
 mod hyper_fixed;
 
 pub use fixed::{FixedConv, SimdMode};

@@ -1,0 +1,298 @@
+//! The convolution as one operation with its own backward pass: patch rows and gemm per image,
+//! no intermediate tensors in candle's graph.
+//!
+//! Forward, per image `b`: `Yᵦᵀ (L × O) = Rᵦ (L × k²C) · W (k²C × O)`, where `Rᵦ` are the patch
+//! rows of the image ([`PatchRows`] layout, `[ky][kx][c]`) and the product is written straight
+//! into NCHW. Backward: `dW = Σᵦ Rᵦᵀ · dYᵦᵀ` (patch rows recomputed, one image at a time) and
+//! `dRᵦ = dYᵦᵀ · Wᵀ`, summed back onto the image. Working memory is one image's patch rows, and
+//! candle's autograd sees a single node, so no zero-filled gradient buffers are allocated for the
+//! intermediate steps.
+
+use candle_core::{CpuStorage, CustomOp2, Layout, Result, Shape, Tensor, bail};
+use gemm::Parallelism;
+use rayon::prelude::*;
+
+use super::conv::Im2Col;
+
+/// A strided matrix view over a slice: element `(i, j)` is at `i·rs + j·cs`.
+#[derive(Clone, Copy)]
+struct View<'a> {
+    data: &'a [f32],
+    rs: usize,
+    cs: usize,
+}
+
+/// `dst (m × n, strides dst_rs, dst_cs) = [dst +] lhs (m × k) · rhs (k × n)`.
+///
+/// Bounds are checked before the call, so the unsafe gemm only touches slice memory.
+#[allow(clippy::too_many_arguments)]
+fn matmul(
+    m: usize,
+    n: usize,
+    k: usize,
+    dst: &mut [f32],
+    dst_rs: usize,
+    dst_cs: usize,
+    accumulate: bool,
+    lhs: View,
+    rhs: View,
+) {
+    let last = |rows: usize, cols: usize, rs: usize, cs: usize| (rows - 1) * rs + (cols - 1) * cs;
+    if m == 0 || n == 0 {
+        return;
+    }
+    assert!(last(m, n, dst_rs, dst_cs) < dst.len(), "matmul: destination too small");
+    if k == 0 {
+        if !accumulate {
+            dst.iter_mut().for_each(|v| *v = 0.0);
+        }
+        return;
+    }
+    assert!(last(m, k, lhs.rs, lhs.cs) < lhs.data.len(), "matmul: lhs too small");
+    assert!(last(k, n, rhs.rs, rhs.cs) < rhs.data.len(), "matmul: rhs too small");
+    let threads = rayon::current_num_threads();
+    let par = if threads > 1 { Parallelism::Rayon(threads) } else { Parallelism::None };
+    // SAFETY: every index the product touches was checked against the slice lengths above;
+    // dst does not alias lhs or rhs (it is borrowed mutably).
+    unsafe {
+        gemm::gemm(
+            m,
+            n,
+            k,
+            dst.as_mut_ptr(),
+            dst_cs as isize,
+            dst_rs as isize,
+            accumulate,
+            lhs.data.as_ptr(),
+            lhs.cs as isize,
+            lhs.rs as isize,
+            rhs.data.as_ptr(),
+            rhs.cs as isize,
+            rhs.rs as isize,
+            1.0,
+            1.0,
+            false,
+            false,
+            false,
+            par,
+        )
+    }
+}
+
+fn contiguous<'a>(s: &'a CpuStorage, l: &Layout) -> Result<&'a [f32]> {
+    let Some((a, b)) = l.contiguous_offsets() else { bail!("fused conv: inputs must be contiguous") };
+    Ok(&s.as_slice::<f32>()?[a..b])
+}
+
+/// One image `(C, H, W)` to `(H, W, C)`.
+fn image_to_hwc(x: &[f32], c: usize, h: usize, w: usize, out: &mut [f32]) {
+    out.par_chunks_mut(w * c).enumerate().for_each(|(y, row)| {
+        for ch in 0..c {
+            let src = &x[(ch * h + y) * w..(ch * h + y + 1) * w];
+            for (xx, &v) in src.iter().enumerate() {
+                row[xx * c + ch] = v;
+            }
+        }
+    });
+}
+
+/// Patch rows `(L × k²C)` of one HWC image.
+fn patch_rows(img: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out: &mut [f32]) {
+    let (ho, wo) = g.output_size(h, w);
+    let row = g.k * g.k * c;
+    out.par_chunks_mut(wo * row).enumerate().for_each(|(oy, line)| {
+        line.iter_mut().for_each(|v| *v = 0.0);
+        for ky in 0..g.k {
+            let iy = (oy * g.stride + ky) as isize - g.pad as isize;
+            if iy < 0 || iy as usize >= h {
+                continue;
+            }
+            let src = &img[iy as usize * w * c..(iy as usize + 1) * w * c];
+            for ox in 0..wo {
+                let dst = &mut line[ox * row + ky * g.k * c..ox * row + (ky + 1) * g.k * c];
+                let x0 = (ox * g.stride) as isize - g.pad as isize;
+                if x0 >= 0 && x0 as usize + g.k <= w {
+                    dst.copy_from_slice(&src[x0 as usize * c..(x0 as usize + g.k) * c]);
+                } else {
+                    for kx in 0..g.k {
+                        let ix = x0 + kx as isize;
+                        if ix >= 0 && (ix as usize) < w {
+                            dst[kx * c..(kx + 1) * c].copy_from_slice(&src[ix as usize * c..(ix as usize + 1) * c]);
+                        }
+                    }
+                }
+            }
+        }
+        let _ = ho;
+    });
+}
+
+/// Sums patch-row gradients `(L × k²C)` back onto one image, written as CHW into `out`.
+fn patch_rows_adjoint(rows: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out_chw: &mut [f32]) {
+    let (ho, wo) = g.output_size(h, w);
+    let row = g.k * g.k * c;
+    let mut hwc = vec![0f32; h * w * c];
+    hwc.par_chunks_mut(w * c).enumerate().for_each(|(iy, out)| {
+        for ky in 0..g.k {
+            let t = iy + g.pad;
+            if t < ky || (t - ky) % g.stride != 0 || (t - ky) / g.stride >= ho {
+                continue;
+            }
+            let oy = (t - ky) / g.stride;
+            for ox in 0..wo {
+                let patch = &rows[(oy * wo + ox) * row + ky * g.k * c..][..g.k * c];
+                for kx in 0..g.k {
+                    let ix = (ox * g.stride + kx) as isize - g.pad as isize;
+                    if ix >= 0 && (ix as usize) < w {
+                        let ix = ix as usize;
+                        for (o, &v) in out[ix * c..(ix + 1) * c].iter_mut().zip(&patch[kx * c..(kx + 1) * c]) {
+                            *o += v;
+                        }
+                    }
+                }
+            }
+        }
+    });
+    out_chw.par_chunks_mut(h * w).enumerate().for_each(|(ch, plane)| {
+        for (i, v) in plane.iter_mut().enumerate() {
+            *v = hwc[i * c + ch];
+        }
+    });
+}
+
+/// Weights `(O, C, k, k)` as the `(k²C × O)` matrix matching the patch-row order.
+fn weight_matrix(w: &[f32], o: usize, c: usize, k: usize) -> Vec<f32> {
+    let mut m = vec![0f32; w.len()];
+    for oo in 0..o {
+        for cc in 0..c {
+            for ky in 0..k {
+                for kx in 0..k {
+                    m[((ky * k + kx) * c + cc) * o + oo] = w[((oo * c + cc) * k + ky) * k + kx];
+                }
+            }
+        }
+    }
+    m
+}
+
+/// The fused convolution: `x (B, C, H, W) ⊛ weight (O, C, k, k)`, no bias.
+#[derive(Debug, Clone, Copy)]
+pub struct FusedConv(pub Im2Col);
+
+impl CustomOp2 for FusedConv {
+    fn name(&self) -> &'static str {
+        "kiln-fused-conv"
+    }
+
+    fn cpu_fwd(&self, s1: &CpuStorage, l1: &Layout, s2: &CpuStorage, l2: &Layout) -> Result<(CpuStorage, Shape)> {
+        let (b, c, h, w) = l1.shape().dims4()?;
+        let (o, c2, k, _) = l2.shape().dims4()?;
+        if c != c2 || k != self.0.k {
+            bail!("fused conv: input has {c} channels, weight {c2}");
+        }
+        let (x, wt) = (contiguous(s1, l1)?, contiguous(s2, l2)?);
+        let g = self.0;
+        let (ho, wo) = g.output_size(h, w);
+        let (l, kk) = (ho * wo, k * k * c);
+        let wm = weight_matrix(wt, o, c, k);
+        let mut y = vec![0f32; b * o * l];
+        let mut hwc = vec![0f32; h * w * c];
+        let mut rows = vec![0f32; l * kk];
+        for bi in 0..b {
+            image_to_hwc(&x[bi * c * h * w..(bi + 1) * c * h * w], c, h, w, &mut hwc);
+            patch_rows(&hwc, g, h, w, c, &mut rows);
+            let dst = &mut y[bi * o * l..(bi + 1) * o * l];
+            // Yᵦᵀ (l, o) lands at o·L + l: NCHW directly.
+            matmul(l, o, kk, dst, 1, l, false, View { data: &rows, rs: kk, cs: 1 }, View { data: &wm, rs: o, cs: 1 });
+        }
+        Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))))
+    }
+
+    fn bwd(&self, x: &Tensor, w: &Tensor, _res: &Tensor, grad: &Tensor) -> Result<(Option<Tensor>, Option<Tensor>)> {
+        let grad = grad.contiguous()?;
+        let dx = grad.apply_op2_no_bwd(w, &FusedConvGradInput { geometry: self.0, h: x.dim(2)?, w: x.dim(3)? })?;
+        let dw = x.apply_op2_no_bwd(&grad, &FusedConvGradWeight { geometry: self.0 })?;
+        Ok((Some(dx), Some(dw)))
+    }
+}
+
+/// `dx` from `(dY, W)`.
+#[derive(Debug, Clone, Copy)]
+struct FusedConvGradInput {
+    geometry: Im2Col,
+    h: usize,
+    w: usize,
+}
+
+impl CustomOp2 for FusedConvGradInput {
+    fn name(&self) -> &'static str {
+        "kiln-fused-conv-grad-input"
+    }
+
+    fn cpu_fwd(&self, s1: &CpuStorage, l1: &Layout, s2: &CpuStorage, l2: &Layout) -> Result<(CpuStorage, Shape)> {
+        let (b, o, ho, wo) = l1.shape().dims4()?;
+        let (_, c, k, _) = l2.shape().dims4()?;
+        let (dy, wt) = (contiguous(s1, l1)?, contiguous(s2, l2)?);
+        let (g, h, w) = (self.geometry, self.h, self.w);
+        let (l, kk) = (ho * wo, k * k * c);
+        let wm = weight_matrix(wt, o, c, k);
+        let mut dx = vec![0f32; b * c * h * w];
+        let mut drows = vec![0f32; l * kk];
+        for bi in 0..b {
+            // dRᵦ (l, k) = Σ_o dYᵦ(o, l) · W(k, o).
+            let lhs = View { data: &dy[bi * o * l..(bi + 1) * o * l], rs: 1, cs: l };
+            matmul(l, kk, o, &mut drows, kk, 1, false, lhs, View { data: &wm, rs: 1, cs: o });
+            patch_rows_adjoint(&drows, g, h, w, c, &mut dx[bi * c * h * w..(bi + 1) * c * h * w]);
+        }
+        Ok((CpuStorage::F32(dx), Shape::from((b, c, h, w))))
+    }
+}
+
+/// `dW` from `(x, dY)`.
+#[derive(Debug, Clone, Copy)]
+struct FusedConvGradWeight {
+    geometry: Im2Col,
+}
+
+impl CustomOp2 for FusedConvGradWeight {
+    fn name(&self) -> &'static str {
+        "kiln-fused-conv-grad-weight"
+    }
+
+    fn cpu_fwd(&self, s1: &CpuStorage, l1: &Layout, s2: &CpuStorage, l2: &Layout) -> Result<(CpuStorage, Shape)> {
+        let (b, c, h, w) = l1.shape().dims4()?;
+        let (_, o, ho, wo) = l2.shape().dims4()?;
+        let (x, dy) = (contiguous(s1, l1)?, contiguous(s2, l2)?);
+        let g = self.geometry;
+        let k = g.k;
+        let (l, kk) = (ho * wo, k * k * c);
+        let mut dwm = vec![0f32; kk * o];
+        let mut hwc = vec![0f32; h * w * c];
+        let mut rows = vec![0f32; l * kk];
+        for bi in 0..b {
+            image_to_hwc(&x[bi * c * h * w..(bi + 1) * c * h * w], c, h, w, &mut hwc);
+            patch_rows(&hwc, g, h, w, c, &mut rows);
+            // dW (k, o) += Σ_l Rᵦ(l, k) · dYᵦ(o, l).
+            let lhs = View { data: &rows, rs: 1, cs: kk };
+            let rhs = View { data: &dy[bi * o * l..(bi + 1) * o * l], rs: 1, cs: l };
+            matmul(kk, o, l, &mut dwm, o, 1, bi > 0, lhs, rhs);
+        }
+        let mut dw = vec![0f32; o * c * k * k];
+        for oo in 0..o {
+            for cc in 0..c {
+                for ky in 0..k {
+                    for kx in 0..k {
+                        dw[((oo * c + cc) * k + ky) * k + kx] = dwm[((ky * k + kx) * c + cc) * o + oo];
+                    }
+                }
+            }
+        }
+        Ok((CpuStorage::F32(dw), Shape::from((o, c, k, k))))
+    }
+}
+
+/// Convolution through [`FusedConv`], differentiable in both arguments.
+pub fn conv2d_fused(x: &Tensor, weight: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
+    let k = weight.dim(2)?;
+    x.contiguous()?.apply_op2(&weight.contiguous()?, FusedConv(Im2Col { k, stride, pad }))
+}
