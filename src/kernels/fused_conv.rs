@@ -98,7 +98,7 @@ fn image_to_hwc(x: &[f32], c: usize, h: usize, w: usize, out: &mut [f32]) {
 
 /// Patch rows `(L × k²C)` of one HWC image.
 fn patch_rows(img: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out: &mut [f32]) {
-    let (ho, wo) = g.output_size(h, w);
+    let (_, wo) = g.output_size(h, w);
     let row = g.k * g.k * c;
     out.par_chunks_mut(wo * row).enumerate().for_each(|(oy, line)| {
         line.iter_mut().for_each(|v| *v = 0.0);
@@ -123,7 +123,6 @@ fn patch_rows(img: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out: &mut [f
                 }
             }
         }
-        let _ = ho;
     });
 }
 
@@ -135,7 +134,7 @@ fn patch_rows_adjoint(rows: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out
     hwc.par_chunks_mut(w * c).enumerate().for_each(|(iy, out)| {
         for ky in 0..g.k {
             let t = iy + g.pad;
-            if t < ky || (t - ky) % g.stride != 0 || (t - ky) / g.stride >= ho {
+            if t < ky || !(t - ky).is_multiple_of(g.stride) || (t - ky) / g.stride >= ho {
                 continue;
             }
             let oy = (t - ky) / g.stride;
