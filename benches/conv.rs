@@ -28,6 +28,7 @@ fn conv_benches(c: &mut Criterion) {
     for s in &SHAPES {
         let x = Var::from_tensor(&Tensor::rand(-1f32, 1.0, (s.batch, s.cin, s.size, s.size), &dev).unwrap()).unwrap();
         let w = Var::from_tensor(&Tensor::rand(-0.1f32, 0.1, (s.cout, s.cin, s.k, s.k), &dev).unwrap()).unwrap();
+        let bias = Var::from_tensor(&Tensor::zeros(s.cout, DType::F32, &dev).unwrap()).unwrap();
         let out = s.size / s.stride;
         let flops = 2 * s.batch * out * out * s.cout * s.cin * s.k * s.k;
         // A square-ish matmul with the same FLOPs.
@@ -39,7 +40,9 @@ fn conv_benches(c: &mut Criterion) {
         for be in [ConvBackend::Fast, ConvBackend::Candle] {
             g.bench_function(format!("{be:?}"), |b| {
                 conv::set_backend(be);
-                b.iter(|| conv::conv2d_selected(x.as_tensor(), w.as_tensor(), s.stride, s.k / 2).unwrap())
+                b.iter(|| {
+                    conv::conv2d_selected(x.as_tensor(), w.as_tensor(), bias.as_tensor(), s.stride, s.k / 2).unwrap()
+                })
             });
         }
         g.bench_function(format!("matmul {n}^3"), |b| b.iter(|| a.matmul(&a).unwrap()));
@@ -51,7 +54,8 @@ fn conv_benches(c: &mut Criterion) {
             g.bench_function(format!("{be:?}"), |b| {
                 conv::set_backend(be);
                 b.iter(|| {
-                    let y = conv::conv2d_selected(x.as_tensor(), w.as_tensor(), s.stride, s.k / 2).unwrap();
+                    let y = conv::conv2d_selected(x.as_tensor(), w.as_tensor(), bias.as_tensor(), s.stride, s.k / 2)
+                        .unwrap();
                     y.sum_all().unwrap().backward().unwrap()
                 })
             });

@@ -22,12 +22,18 @@ fn main() {
     ] {
         let x = Var::from_tensor(&Tensor::rand(-1f32, 1.0, (b, ci, sz, sz), &dev).unwrap()).unwrap();
         let w = Var::from_tensor(&Tensor::rand(-0.1f32, 0.1, (co, ci, k, k), &dev).unwrap()).unwrap();
+        let bias = Var::from_tensor(&Tensor::zeros(co, candle_core::DType::F32, &dev).unwrap()).unwrap();
         let name = format!("{ci}->{co} k{k} s{st} @{sz}");
         t(&format!("{name} patch fwd+bwd"), || {
             conv2d(x.as_tensor(), w.as_tensor(), st, k / 2).unwrap().sum_all().unwrap().backward().unwrap();
         });
         t(&format!("{name} fused fwd+bwd"), || {
-            conv2d_fused(x.as_tensor(), w.as_tensor(), st, k / 2).unwrap().sum_all().unwrap().backward().unwrap();
+            conv2d_fused(x.as_tensor(), w.as_tensor(), bias.as_tensor(), st, k / 2)
+                .unwrap()
+                .sum_all()
+                .unwrap()
+                .backward()
+                .unwrap();
         });
         t(&format!("{name} chan  fwd+bwd"), || {
             conv2d_channel_major(x.as_tensor(), w.as_tensor(), st, k / 2)

@@ -22,15 +22,21 @@ fn main() -> candle_core::Result<()> {
     let dev = Device::Cpu;
     let x = Var::from_tensor(&Tensor::rand(-1f32, 1.0, (8, 64, 64, 64), &dev)?)?;
     let w = Var::from_tensor(&Tensor::rand(-0.1f32, 0.1, (64, 64, 5, 5), &dev)?)?;
+    let bias = Var::from_tensor(&Tensor::zeros(64, candle_core::DType::F32, &dev)?)?;
     let flops = 2.0 * 8.0 * 32.0 * 32.0 * 64.0 * 64.0 * 25.0;
     for be in [ConvBackend::Fast, ConvBackend::Candle] {
         conv::set_backend(be);
         let s = time(&format!("{be:?} conv 5x5 s2 64->64 fwd"), 3, || {
-            conv::conv2d_selected(x.as_tensor(), w.as_tensor(), 2, 2)
+            conv::conv2d_selected(x.as_tensor(), w.as_tensor(), bias.as_tensor(), 2, 2)
         });
         println!("{:40} {:8.1} GFLOP/s", "", flops / s / 1e9);
         let s = time(&format!("{be:?} conv fwd+bwd"), 3, || {
-            conv::conv2d_selected(x.as_tensor(), w.as_tensor(), 2, 2).unwrap().sum_all().unwrap().backward().unwrap()
+            conv::conv2d_selected(x.as_tensor(), w.as_tensor(), bias.as_tensor(), 2, 2)
+                .unwrap()
+                .sum_all()
+                .unwrap()
+                .backward()
+                .unwrap()
         });
         println!("{:40} {:8.1} GFLOP/s", "", 3.0 * flops / s / 1e9);
     }

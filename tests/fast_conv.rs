@@ -38,12 +38,14 @@ fn matches_candle_conv2d_forward_and_gradients() {
         let theirs = x.as_tensor().conv2d(wt.as_tensor(), pad, s, 1, 1).unwrap();
         let other = conv2d_channel_major(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
         assert!(rel_err(&other, &theirs) <= 1e-5, "channel-major forward");
-        let fused = conv2d_fused(x.as_tensor(), wt.as_tensor(), s, pad).unwrap();
-        assert!(rel_err(&fused, &theirs) <= 1e-5, "fused forward");
+        let bias = Var::from_tensor(&random(&mut rng, &[co])).unwrap();
+        let fused = conv2d_fused(x.as_tensor(), wt.as_tensor(), bias.as_tensor(), s, pad).unwrap();
+        let theirs_b = theirs.broadcast_add(&bias.as_tensor().reshape((1, co, 1, 1)).unwrap()).unwrap();
+        assert!(rel_err(&fused, &theirs_b) <= 1e-5, "fused forward");
         let g = random(&mut rng, fused.dims());
         let gf = (&fused * &g).unwrap().sum_all().unwrap().backward().unwrap();
-        let gc = (&theirs * &g).unwrap().sum_all().unwrap().backward().unwrap();
-        for v in [&x, &wt] {
+        let gc = (&theirs_b * &g).unwrap().sum_all().unwrap().backward().unwrap();
+        for v in [&x, &wt, &bias] {
             let (a, c) = (gf.get(v.as_tensor()).unwrap(), gc.get(v.as_tensor()).unwrap());
             assert!(rel_err(a, c) <= 1e-5, "fused gradient {:?}: {}", (b, ci, co, h, w, k, s), rel_err(a, c));
         }

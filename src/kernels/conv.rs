@@ -39,11 +39,11 @@ pub fn backend() -> ConvBackend {
     if BACKEND.load(Ordering::Relaxed) == 1 { ConvBackend::Candle } else { ConvBackend::Fast }
 }
 
-/// Convolution through the selected backend.
-pub fn conv2d_selected(x: &Tensor, weight: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
+/// Convolution plus per-channel bias through the selected backend.
+pub fn conv2d_selected(x: &Tensor, weight: &Tensor, bias: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
     match backend() {
-        ConvBackend::Fast => super::fused_conv::conv2d_fused(x, weight, stride, pad),
-        ConvBackend::Candle => x.conv2d(weight, pad, stride, 1, 1),
+        ConvBackend::Fast => super::fused_conv::conv2d_fused(x, weight, bias, stride, pad),
+        ConvBackend::Candle => x.conv2d(weight, pad, stride, 1, 1)?.broadcast_add(&bias.reshape((1, (), 1, 1))?),
     }
 }
 

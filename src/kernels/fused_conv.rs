@@ -8,7 +8,7 @@
 //! candle's autograd sees a single node, so no zero-filled gradient buffers are allocated for the
 //! intermediate steps.
 
-use candle_core::{CpuStorage, CustomOp2, Layout, Result, Shape, Tensor, bail};
+use candle_core::{CpuStorage, CustomOp2, CustomOp3, Layout, Result, Shape, Tensor, bail};
 use gemm::Parallelism;
 use rayon::prelude::*;
 
@@ -174,27 +174,39 @@ fn weight_matrix(w: &[f32], o: usize, c: usize, k: usize) -> Vec<f32> {
     m
 }
 
-/// The fused convolution: `x (B, C, H, W) ⊛ weight (O, C, k, k)`, no bias.
+/// The fused convolution: `x (B, C, H, W) ⊛ weight (O, C, k, k) + bias (O)`.
 #[derive(Debug, Clone, Copy)]
 pub struct FusedConv(pub Im2Col);
 
-impl CustomOp2 for FusedConv {
+impl CustomOp3 for FusedConv {
     fn name(&self) -> &'static str {
         "kiln-fused-conv"
     }
 
-    fn cpu_fwd(&self, s1: &CpuStorage, l1: &Layout, s2: &CpuStorage, l2: &Layout) -> Result<(CpuStorage, Shape)> {
+    fn cpu_fwd(
+        &self,
+        s1: &CpuStorage,
+        l1: &Layout,
+        s2: &CpuStorage,
+        l2: &Layout,
+        s3: &CpuStorage,
+        l3: &Layout,
+    ) -> Result<(CpuStorage, Shape)> {
         let (b, c, h, w) = l1.shape().dims4()?;
         let (o, c2, k, _) = l2.shape().dims4()?;
         if c != c2 || k != self.0.k {
             bail!("fused conv: input has {c} channels, weight {c2}");
         }
-        let (x, wt) = (contiguous(s1, l1)?, contiguous(s2, l2)?);
+        let (x, wt, bias) = (contiguous(s1, l1)?, contiguous(s2, l2)?, contiguous(s3, l3)?);
+        if bias.len() != o {
+            bail!("fused conv: bias has {} entries for {o} outputs", bias.len());
+        }
         let g = self.0;
         let (ho, wo) = g.output_size(h, w);
         let (l, kk) = (ho * wo, k * k * c);
         let wm = weight_matrix(wt, o, c, k);
-        let mut y = vec![0f32; b * o * l];
+        // Start from the bias and accumulate the product onto it.
+        let mut y: Vec<f32> = (0..b * o).flat_map(|i| std::iter::repeat_n(bias[i % o], l)).collect();
         let mut hwc = vec![0f32; h * w * c];
         let mut rows = vec![0f32; l * kk];
         for bi in 0..b {
@@ -202,16 +214,29 @@ impl CustomOp2 for FusedConv {
             patch_rows(&hwc, g, h, w, c, &mut rows);
             let dst = &mut y[bi * o * l..(bi + 1) * o * l];
             // Yᵦᵀ (l, o) lands at o·L + l: NCHW directly.
-            matmul(l, o, kk, dst, 1, l, false, View { data: &rows, rs: kk, cs: 1 }, View { data: &wm, rs: o, cs: 1 });
+            matmul(l, o, kk, dst, 1, l, true, View { data: &rows, rs: kk, cs: 1 }, View { data: &wm, rs: o, cs: 1 });
         }
         Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))))
     }
 
-    fn bwd(&self, x: &Tensor, w: &Tensor, _res: &Tensor, grad: &Tensor) -> Result<(Option<Tensor>, Option<Tensor>)> {
+    fn bwd(
+        &self,
+        x: &Tensor,
+        w: &Tensor,
+        _bias: &Tensor,
+        _res: &Tensor,
+        grad: &Tensor,
+    ) -> Result<(Option<Tensor>, Option<Tensor>, Option<Tensor>)> {
         let grad = grad.contiguous()?;
-        let dx = grad.apply_op2_no_bwd(w, &FusedConvGradInput { geometry: self.0, h: x.dim(2)?, w: x.dim(3)? })?;
+        // The input of the first layer is data: skip its gradient.
+        let dx = if x.is_variable() || x.track_op() {
+            Some(grad.apply_op2_no_bwd(w, &FusedConvGradInput { geometry: self.0, h: x.dim(2)?, w: x.dim(3)? })?)
+        } else {
+            None
+        };
         let dw = x.apply_op2_no_bwd(&grad, &FusedConvGradWeight { geometry: self.0 })?;
-        Ok((Some(dx), Some(dw)))
+        let db = grad.sum((0, 2, 3))?;
+        Ok((dx, Some(dw), Some(db)))
     }
 }
 
@@ -290,8 +315,8 @@ impl CustomOp2 for FusedConvGradWeight {
     }
 }
 
-/// Convolution through [`FusedConv`], differentiable in both arguments.
-pub fn conv2d_fused(x: &Tensor, weight: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
+/// Convolution with bias through [`FusedConv`], differentiable in all three arguments.
+pub fn conv2d_fused(x: &Tensor, weight: &Tensor, bias: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
     let k = weight.dim(2)?;
-    x.contiguous()?.apply_op2(&weight.contiguous()?, FusedConv(Im2Col { k, stride, pad }))
+    x.contiguous()?.apply_op3(&weight.contiguous()?, &bias.contiguous()?, FusedConv(Im2Col { k, stride, pad }))
 }

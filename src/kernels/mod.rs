@@ -4,6 +4,7 @@
 pub mod conv;
 pub mod fixed;
 pub mod fused_conv;
+pub mod fused_gdn;
 mod hyper_fixed;
 
 pub use fixed::{FixedConv, SimdMode};

@@ -39,11 +39,18 @@ impl Gdn {
     }
 }
 
-impl Module for Gdn {
-    fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        let (b, c, h, w) = x.dims4()?;
-        let beta = (self.beta_raw.sqr()? + BETA_FLOOR)?.reshape((1, c, 1))?;
+impl Gdn {
+    fn parameters(&self) -> Result<(Tensor, Tensor)> {
+        let beta = (self.beta_raw.sqr()? + BETA_FLOOR)?;
         let gamma = (&self.gamma_raw + (&self.eye * GAMMA_OFFSET)?)?.sqr()?;
+        Ok((beta, gamma))
+    }
+
+    /// The same layer written as plain candle operations (the reference for the fused kernel).
+    pub fn forward_reference(&self, x: &Tensor) -> Result<Tensor> {
+        let (b, c, h, w) = x.dims4()?;
+        let (beta, gamma) = self.parameters()?;
+        let beta = beta.reshape((1, c, 1))?;
         let x2 = x.sqr()?.reshape((b, c, h * w))?;
         let norm = gamma.broadcast_matmul(&x2)?.broadcast_add(&beta)?.sqrt()?;
         let norm = norm.reshape((b, c, h, w))?;
@@ -51,5 +58,13 @@ impl Module for Gdn {
             GdnDirection::Forward => x / norm,
             GdnDirection::Inverse => x * norm,
         }
+    }
+}
+
+impl Module for Gdn {
+    fn forward(&self, x: &Tensor) -> Result<Tensor> {
+        let (beta, gamma) = self.parameters()?;
+        let op = crate::kernels::fused_gdn::FusedGdn { inverse: self.direction == GdnDirection::Inverse };
+        x.contiguous()?.apply_op3(&beta, &gamma.contiguous()?, op)
     }
 }

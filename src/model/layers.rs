@@ -48,8 +48,7 @@ impl Conv {
 impl Module for Conv {
     fn forward(&self, x: &Tensor) -> Result<Tensor> {
         let pad = self.config.kernel / 2;
-        let y = crate::kernels::conv::conv2d_selected(x, &self.weight, self.config.stride, pad)?;
-        y.broadcast_add(&self.bias.reshape((1, self.config.out_channels, 1, 1))?)
+        crate::kernels::conv::conv2d_selected(x, &self.weight, &self.bias, self.config.stride, pad)
     }
 }
 
