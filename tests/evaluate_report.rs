@@ -23,7 +23,9 @@ fn evaluate_writes_the_whole_report() {
         jobs: 2,
         progress: false,
     };
-    let s = evaluate(&tiny_codec(41), &o).unwrap();
+    let reference = tiny_codec(42);
+    let s = evaluate(&tiny_codec(41), Some(&reference), &o).unwrap();
+    assert!(s.mean_curves.contains_key(kiln::eval::REFERENCE_CODEC));
     assert_eq!(s.images, 2);
     assert_eq!(s.skipped.len(), 1);
     for f in ["rd.csv", "summary.json", "rd-psnr.svg", "rd-psnr.png", "rd-ms-ssim.svg", "rd-ms-ssim.png", "report.html"]
@@ -34,7 +36,7 @@ fn evaluate_writes_the_whole_report() {
     let mut lines = csv.lines();
     assert_eq!(lines.next().unwrap(), "image,codec,setting,bytes,bpp,psnr,ssim,ms_ssim,encode_ms,decode_ms");
     let rows: Vec<Vec<&str>> = lines.map(|l| l.split(',').collect()).collect();
-    assert_eq!(rows.len(), 2 * (4 + 4 + 1));
+    assert_eq!(rows.len(), 2 * (4 + 4 + 4 + 1));
     for r in &rows {
         assert_eq!(r.len(), 10);
         let bytes: f64 = r[3].parse().unwrap();

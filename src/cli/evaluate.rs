@@ -17,6 +17,9 @@ pub struct EvaluateArgs {
     /// Model file (default: the embedded model).
     #[arg(long)]
     model: Option<PathBuf>,
+    /// A second model to compare against (e.g. `default` when --model is a fine-tuned one).
+    #[arg(long)]
+    reference_model: Option<PathBuf>,
     /// Kiln qualities, comma-separated.
     #[arg(long, value_delimiter = ',')]
     qualities: Option<Vec<f32>>,
@@ -42,7 +45,8 @@ pub fn evaluate(a: EvaluateArgs) -> anyhow::Result<()> {
         jobs: a.jobs,
         progress: true,
     };
-    let s = kiln::eval::evaluate(&codec, &opts)?;
+    let reference = a.reference_model.as_deref().map(|p| ModelFile::load(Some(p)).and_then(Codec::new)).transpose()?;
+    let s = kiln::eval::evaluate(&codec, reference.as_ref(), &opts)?;
     let pct = |v: Option<f64>| v.map(|v| format!("{:+.1}%", 100.0 * v)).unwrap_or_else(|| "n/a".into());
     eprintln!("{} images, {} skipped", s.images, s.skipped.len());
     if let Some(k) = s.mean_curves.get("kiln") {
@@ -51,6 +55,9 @@ pub fn evaluate(a: EvaluateArgs) -> anyhow::Result<()> {
         }
     }
     eprintln!("BD-rate vs JPEG (4:2:0, optimized Huffman): {}  (negative = fewer bits)", pct(s.bd_rate_vs_jpeg));
+    if reference.is_some() {
+        eprintln!("BD-rate vs the reference model: {}", pct(s.bd_rate_vs_reference));
+    }
     eprintln!("report: {}", a.out.join("report.html").display());
     Ok(())
 }

@@ -102,9 +102,30 @@ fn ms(t: Instant) -> f64 {
     t.elapsed().as_secs_f64() * 1e3
 }
 
-/// Evaluates one picture with every codec.
-pub fn evaluate_picture(codec: &Codec, name: &str, pic: &Picture, o: &EvalOptions) -> Result<ImageResult> {
+/// Codec name of the reference model's rows (`--reference-model`).
+pub const REFERENCE_CODEC: &str = "kiln-reference";
+
+/// Evaluates one picture with every codec (and the reference model, if given).
+pub fn evaluate_picture(
+    codec: &Codec,
+    reference: Option<&Codec>,
+    name: &str,
+    pic: &Picture,
+    o: &EvalOptions,
+) -> Result<ImageResult> {
     let mut rows = Vec::new();
+    if let Some(r) = reference {
+        for &q in &o.qualities {
+            let t = Instant::now();
+            let enc = r.encode(pic, q)?;
+            let e = ms(t);
+            let t = Instant::now();
+            let dec = r.decode(&enc.bytes)?;
+            let d = ms(t);
+            let coded = Coded { bytes: enc.bytes.len(), encode_ms: e, decode_ms: d };
+            rows.push(measure(name, REFERENCE_CODEC, format!("{q}"), coded, pic, &dec));
+        }
+    }
     let mut kiln = Vec::new();
     for &q in &o.qualities {
         let t = Instant::now();
@@ -162,6 +183,8 @@ pub struct Summary {
     pub mean_curves: std::collections::BTreeMap<String, Vec<CurvePoint>>,
     /// BD-rate of Kiln vs JPEG on the mean curve (fraction; −0.25 = 25% fewer bits).
     pub bd_rate_vs_jpeg: Option<f64>,
+    /// BD-rate of the model vs the reference model on the mean curve, when one was given.
+    pub bd_rate_vs_reference: Option<f64>,
     /// BD-PSNR of Kiln vs JPEG on the mean curve, in dB.
     pub bd_psnr_vs_jpeg: Option<f64>,
     /// Per-image BD-rate of Kiln vs JPEG.
@@ -182,7 +205,7 @@ fn curve(rows: &[&Row]) -> Vec<(f64, f64)> {
 pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model: String) -> Summary {
     let all: Vec<&Row> = results.iter().flat_map(|r| &r.rows).collect();
     let mut mean_curves = std::collections::BTreeMap::new();
-    for codec in ["kiln", "jpeg", "png"] {
+    for codec in ["kiln", REFERENCE_CODEC, "jpeg", "png"] {
         let mut settings: Vec<String> = Vec::new();
         for r in all.iter().filter(|r| r.codec == codec) {
             if !settings.contains(&r.setting) {
@@ -198,9 +221,13 @@ pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model:
                 (s, mean(|r| r.bpp), mean(|r| r.psnr), mean(|r| r.ssim), mean(|r| r.ms_ssim))
             })
             .collect::<Vec<_>>();
-        mean_curves.insert(codec.to_string(), pts);
+        if !pts.is_empty() {
+            mean_curves.insert(codec.to_string(), pts);
+        }
     }
-    let mc = |c: &str| -> Vec<(f64, f64)> { mean_curves[c].iter().map(|p| (p.1, p.2)).collect() };
+    let mc = |c: &str| -> Vec<(f64, f64)> {
+        mean_curves.get(c).map(|v| v.iter().map(|p| (p.1, p.2)).collect()).unwrap_or_default()
+    };
     let bd_rate_per_image = results
         .iter()
         .map(|r| {
@@ -223,12 +250,13 @@ pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model:
             size_vs_png.push((s.clone(), ratios.iter().sum::<f64>() / ratios.len().max(1) as f64));
         }
     }
-    let png_bpp = mean_curves["png"].first().map(|p| p.1).unwrap_or(f64::NAN);
+    let png_bpp = mean_curves.get("png").and_then(|v| v.first()).map(|p| p.1).unwrap_or(f64::NAN);
     Summary {
         images: results.len(),
         skipped,
         bd_rate_vs_jpeg: bd::bd_rate(&mc("jpeg"), &mc("kiln")),
         bd_psnr_vs_jpeg: bd::bd_psnr(&mc("jpeg"), &mc("kiln")),
+        bd_rate_vs_reference: bd::bd_rate(&mc(REFERENCE_CODEC), &mc("kiln")),
         mean_curves,
         bd_rate_per_image,
         size_vs_png,
@@ -237,8 +265,9 @@ pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model:
     }
 }
 
-/// Runs the evaluation and writes the report; returns the summary.
-pub fn evaluate(codec: &Codec, o: &EvalOptions) -> Result<Summary> {
+/// Runs the evaluation and writes the report; returns the summary. With `reference`, a second
+/// model (e.g. the default, when `codec` is a fine-tuned one) is swept too and compared.
+pub fn evaluate(codec: &Codec, reference: Option<&Codec>, o: &EvalOptions) -> Result<Summary> {
     if o.qualities.len() < 4 || o.jpeg_qualities.len() < 4 {
         return Err(KilnError::InvalidArgument("at least four qualities per codec are needed for BD-rate".into()));
     }
@@ -265,7 +294,7 @@ pub fn evaluate(codec: &Codec, o: &EvalOptions) -> Result<Summary> {
             .map(|path| {
                 let name = display_name(path, &o.dirs);
                 let r = Picture::open(path, AlphaPolicy::Drop)
-                    .and_then(|pic| evaluate_picture(codec, &name, &pic, o))
+                    .and_then(|pic| evaluate_picture(codec, reference, &name, &pic, o))
                     .map_err(|e| e.to_string().lines().next().unwrap_or("").to_string());
                 bar.inc(1);
                 bar.set_message(name.clone());

@@ -11,6 +11,7 @@ use crate::image_io::{Picture, write_atomic};
 
 const KILN_COLOR: [u8; 3] = [200, 80, 30];
 const JPEG_COLOR: [u8; 3] = [40, 100, 190];
+const REFERENCE_COLOR: [u8; 3] = [120, 160, 60];
 const CROP: u32 = 192;
 
 fn num(v: f64) -> String {
@@ -52,16 +53,19 @@ pub fn rd_csv(results: &[ImageResult]) -> String {
 /// The two rate–distortion plots of the mean curves.
 pub fn plots(summary: &Summary) -> [Plot; 2] {
     let series = |metric: usize| -> Vec<Series> {
-        [("kiln", "Kiln", KILN_COLOR), ("jpeg", "JPEG 4:2:0", JPEG_COLOR)]
-            .iter()
-            .filter_map(|(k, label, color)| {
-                let pts = summary.mean_curves.get(*k)?;
-                let mut points: Vec<(f64, f64)> =
-                    pts.iter().map(|p| (p.1, if metric == 0 { p.2 } else { p.4 })).collect();
-                points.sort_by(|a, b| a.0.total_cmp(&b.0));
-                Some(Series { label: label.to_string(), color: *color, points })
-            })
-            .collect()
+        [
+            ("kiln", "Kiln", KILN_COLOR),
+            (super::REFERENCE_CODEC, "Kiln, reference model", REFERENCE_COLOR),
+            ("jpeg", "JPEG 4:2:0", JPEG_COLOR),
+        ]
+        .iter()
+        .filter_map(|(k, label, color)| {
+            let pts = summary.mean_curves.get(*k)?;
+            let mut points: Vec<(f64, f64)> = pts.iter().map(|p| (p.1, if metric == 0 { p.2 } else { p.4 })).collect();
+            points.sort_by(|a, b| a.0.total_cmp(&b.0));
+            Some(Series { label: label.to_string(), color: *color, points })
+        })
+        .collect()
     };
     let marker = Some(("PNG lossless".to_string(), summary.png_bpp));
     [
@@ -126,12 +130,16 @@ pub fn write_report(dir: &Path, results: &[ImageResult], summary: &Summary) -> R
 body{{font-family:sans-serif;margin:2em;color:#222}} table{{border-collapse:collapse}} td,th{{border:1px solid #ccc;padding:3px 8px;text-align:right}} \
 .crops img{{image-rendering:pixelated;width:288px;margin-right:6px}} figure{{display:inline-block;margin:0 8px 0 0}}</style></head><body>\
 <h1>Kiln rate–distortion report</h1><p>{} images, model <code>{}</code>. BD-rate of Kiln vs JPEG on the mean curve: <b>{}</b>; BD-PSNR: <b>{}</b>. \
-Mean PNG size: {:.3} bpp.</p>",
+Mean PNG size: {:.3} bpp.{}</p>",
         summary.images,
         summary.model,
         summary.bd_rate_vs_jpeg.map(|v| format!("{:+.1}%", 100.0 * v)).unwrap_or("n/a (ranges do not overlap)".into()),
         summary.bd_psnr_vs_jpeg.map(|v| format!("{v:+.2} dB")).unwrap_or("n/a".into()),
-        summary.png_bpp
+        summary.png_bpp,
+        summary
+            .bd_rate_vs_reference
+            .map(|v| format!(" BD-rate vs the reference model: <b>{:+.1}%</b>.", 100.0 * v))
+            .unwrap_or_default()
     );
     for svg in &svgs {
         html += svg;
