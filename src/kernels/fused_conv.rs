@@ -16,17 +16,17 @@ use super::conv::Im2Col;
 
 /// A strided matrix view over a slice: element `(i, j)` is at `i·rs + j·cs`.
 #[derive(Clone, Copy)]
-struct View<'a> {
-    data: &'a [f32],
-    rs: usize,
-    cs: usize,
+pub(crate) struct View<'a> {
+    pub(crate) data: &'a [f32],
+    pub(crate) rs: usize,
+    pub(crate) cs: usize,
 }
 
 /// `dst (m × n, strides dst_rs, dst_cs) = [dst +] lhs (m × k) · rhs (k × n)`.
 ///
 /// Bounds are checked before the call, so the unsafe gemm only touches slice memory.
 #[allow(clippy::too_many_arguments)]
-fn matmul(
+pub(crate) fn matmul(
     m: usize,
     n: usize,
     k: usize,

@@ -8,10 +8,11 @@
 //! data. `β` and `γ` come in already re-parameterised, so candle differentiates that part.
 
 use candle_core::{CpuStorage, CustomOp3, Layout, Result, Shape, Tensor, bail};
-use gemm::Parallelism;
 use rayon::prelude::*;
 
-/// `dst (m × n, row-major, leading dim n) [+]= lhs (m × k, strides) · rhs (k × n, strides)`.
+use super::fused_conv::View;
+
+/// `dst (m × n, row-major) [+]= lhs (m × k, strides) · rhs (k × n, strides)`, on gemm.
 #[allow(clippy::too_many_arguments)]
 fn matmul(
     m: usize,
@@ -26,38 +27,9 @@ fn matmul(
     r_rs: usize,
     r_cs: usize,
 ) {
-    assert!(dst.len() >= m * n, "gdn matmul: destination too small");
-    assert!(m == 0 || k == 0 || (m - 1) * l_rs + (k - 1) * l_cs < lhs.len(), "gdn matmul: lhs too small");
-    assert!(n == 0 || k == 0 || (k - 1) * r_rs + (n - 1) * r_cs < rhs.len(), "gdn matmul: rhs too small");
-    if m == 0 || n == 0 || k == 0 {
-        return;
-    }
-    let t = rayon::current_num_threads();
-    let par = if t > 1 { Parallelism::Rayon(t) } else { Parallelism::None };
-    // SAFETY: bounds checked above; dst is a distinct mutable borrow.
-    unsafe {
-        gemm::gemm(
-            m,
-            n,
-            k,
-            dst.as_mut_ptr(),
-            1,
-            n as isize,
-            acc,
-            lhs.as_ptr(),
-            l_cs as isize,
-            l_rs as isize,
-            rhs.as_ptr(),
-            r_cs as isize,
-            r_rs as isize,
-            1.0,
-            1.0,
-            false,
-            false,
-            false,
-            par,
-        )
-    }
+    let lhs = View { data: lhs, rs: l_rs, cs: l_cs };
+    let rhs = View { data: rhs, rs: r_rs, cs: r_cs };
+    super::fused_conv::matmul(m, n, k, dst, n, 1, acc, lhs, rhs);
 }
 
 fn slice<'a>(s: &'a CpuStorage, l: &Layout) -> Result<&'a [f32]> {
