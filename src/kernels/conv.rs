@@ -81,7 +81,8 @@ impl Im2Col {
     }
 }
 
-fn contiguous_f32<'a>(storage: &'a CpuStorage, layout: &Layout) -> Result<&'a [f32]> {
+/// The `f32` values of a contiguous CPU tensor (custom ops here require contiguous inputs).
+pub(crate) fn contiguous_f32<'a>(storage: &'a CpuStorage, layout: &Layout) -> Result<&'a [f32]> {
     let Some((start, end)) = layout.contiguous_offsets() else { bail!("im2col: input must be contiguous") };
     Ok(&storage.as_slice::<f32>()?[start..end])
 }

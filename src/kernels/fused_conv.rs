@@ -12,7 +12,7 @@ use candle_core::{CpuStorage, CustomOp2, CustomOp3, Layout, Result, Shape, Tenso
 use gemm::Parallelism;
 use rayon::prelude::*;
 
-use super::conv::Im2Col;
+use super::conv::{Im2Col, contiguous_f32};
 
 /// A strided matrix view over a slice: element `(i, j)` is at `i·rs + j·cs`.
 #[derive(Clone, Copy)]
@@ -77,11 +77,6 @@ pub(crate) fn matmul(
             par,
         )
     }
-}
-
-fn contiguous<'a>(s: &'a CpuStorage, l: &Layout) -> Result<&'a [f32]> {
-    let Some((a, b)) = l.contiguous_offsets() else { bail!("fused conv: inputs must be contiguous") };
-    Ok(&s.as_slice::<f32>()?[a..b])
 }
 
 /// One image `(C, H, W)` to `(H, W, C)`.
@@ -197,7 +192,7 @@ impl CustomOp3 for FusedConv {
         if c != c2 || k != self.0.k {
             bail!("fused conv: input has {c} channels, weight {c2}");
         }
-        let (x, wt, bias) = (contiguous(s1, l1)?, contiguous(s2, l2)?, contiguous(s3, l3)?);
+        let (x, wt, bias) = (contiguous_f32(s1, l1)?, contiguous_f32(s2, l2)?, contiguous_f32(s3, l3)?);
         if bias.len() != o {
             bail!("fused conv: bias has {} entries for {o} outputs", bias.len());
         }
@@ -256,7 +251,7 @@ impl CustomOp2 for FusedConvGradInput {
     fn cpu_fwd(&self, s1: &CpuStorage, l1: &Layout, s2: &CpuStorage, l2: &Layout) -> Result<(CpuStorage, Shape)> {
         let (b, o, ho, wo) = l1.shape().dims4()?;
         let (_, c, k, _) = l2.shape().dims4()?;
-        let (dy, wt) = (contiguous(s1, l1)?, contiguous(s2, l2)?);
+        let (dy, wt) = (contiguous_f32(s1, l1)?, contiguous_f32(s2, l2)?);
         let (g, h, w) = (self.geometry, self.h, self.w);
         let (l, kk) = (ho * wo, k * k * c);
         let wm = weight_matrix(wt, o, c, k);
@@ -286,7 +281,7 @@ impl CustomOp2 for FusedConvGradWeight {
     fn cpu_fwd(&self, s1: &CpuStorage, l1: &Layout, s2: &CpuStorage, l2: &Layout) -> Result<(CpuStorage, Shape)> {
         let (b, c, h, w) = l1.shape().dims4()?;
         let (_, o, ho, wo) = l2.shape().dims4()?;
-        let (x, dy) = (contiguous(s1, l1)?, contiguous(s2, l2)?);
+        let (x, dy) = (contiguous_f32(s1, l1)?, contiguous_f32(s2, l2)?);
         let g = self.geometry;
         let k = g.k;
         let (l, kk) = (ho * wo, k * k * c);

@@ -10,6 +10,7 @@
 use candle_core::{CpuStorage, CustomOp3, Layout, Result, Shape, Tensor, bail};
 use rayon::prelude::*;
 
+use super::conv::contiguous_f32;
 use super::fused_conv::View;
 
 /// `dst (m × n, row-major) [+]= lhs (m × k, strides) · rhs (k × n, strides)`, on gemm.
@@ -30,11 +31,6 @@ fn matmul(
     let lhs = View { data: lhs, rs: l_rs, cs: l_cs };
     let rhs = View { data: rhs, rs: r_rs, cs: r_cs };
     super::fused_conv::matmul(m, n, k, dst, n, 1, acc, lhs, rhs);
-}
-
-fn slice<'a>(s: &'a CpuStorage, l: &Layout) -> Result<&'a [f32]> {
-    let Some((a, b)) = l.contiguous_offsets() else { bail!("fused GDN: inputs must be contiguous") };
-    Ok(&s.as_slice::<f32>()?[a..b])
 }
 
 /// `n = γ·x² + β` for one image `(C, P)`.
@@ -66,7 +62,7 @@ impl CustomOp3 for FusedGdn {
         l3: &Layout,
     ) -> Result<(CpuStorage, Shape)> {
         let (b, c, h, w) = l1.shape().dims4()?;
-        let (x, beta, gamma) = (slice(s1, l1)?, slice(s2, l2)?, slice(s3, l3)?);
+        let (x, beta, gamma) = (contiguous_f32(s1, l1)?, contiguous_f32(s2, l2)?, contiguous_f32(s3, l3)?);
         if beta.len() != c || gamma.len() != c * c {
             bail!("fused GDN: parameters do not match {c} channels");
         }
