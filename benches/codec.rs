@@ -1,5 +1,6 @@
 //! Encode and decode throughput of the embedded default model at three qualities on a 768×512
-//! photograph, with PNG and JPEG of the same image in the same groups (pixels/s).
+//! photograph, with PNG and JPEG of the same image in the same groups (pixels/s), and candle's
+//! matmul as the ruler for the decoder's GFLOP/s.
 
 use criterion::{Criterion, Throughput, criterion_group, criterion_main};
 use kiln::eval::baselines::{decode_jpeg, encode_jpeg};
@@ -52,6 +53,14 @@ fn codec_benches(c: &mut Criterion) {
     let png = pic.to_png().unwrap();
     dec.bench_function("png", |b| b.iter(|| image::load_from_memory(&png).unwrap()));
     dec.finish();
+    // The ruler for the decoder's GFLOP/s: candle's matmul on 1024×1024 f32 (2·1024³ FLOPs),
+    // run in the same process so that the ratio comes from one run.
+    let mut mm = c.benchmark_group("matmul 1024");
+    mm.throughput(Throughput::Elements(2 * 1024 * 1024 * 1024));
+    mm.sample_size(10);
+    let a = candle_core::Tensor::randn(0f32, 1.0, (1024, 1024), &candle_core::Device::Cpu).unwrap();
+    mm.bench_function("candle matmul (FLOPs)", |b| b.iter(|| a.matmul(&a).unwrap()));
+    mm.finish();
 }
 
 fn config() -> Criterion {

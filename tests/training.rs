@@ -36,6 +36,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         val_every: 0,
         clip: 5.0,
         decay_from: 0.8,
+        lambdas: None,
         distortion: kiln::train::Distortion::Mse,
         stop_after: None,
         progress: false,
@@ -188,4 +189,33 @@ fn tiny_model_trains_with_ms_ssim_distortion() {
     assert!(last < first, "loss did not decrease: {first} → {last}");
     let f = ModelFile::load(Some(&o.out)).unwrap();
     assert_eq!(f.training.distortion, kiln::train::Distortion::MsSsim);
+}
+
+#[test]
+fn resuming_with_more_anchors_keeps_the_old_ones_and_extends_the_quality_range() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    write_images(&tmp.path().join("imgs"));
+    let out = tmp.path().join("m.safetensors");
+    let mut o = options(tmp.path(), out.clone(), 10);
+    train(&o).unwrap();
+    let before = ModelFile::load(Some(&out)).unwrap();
+    let old = before.model.config.lambdas.clone();
+    let mut new = old.clone();
+    new.push(old[old.len() - 1] * 2.0);
+    o.steps = 12;
+    o.resume = Some(out.with_extension("ckpt"));
+    o.lambdas = Some(new.clone());
+    train(&o).unwrap();
+    let after = ModelFile::load(Some(&out)).unwrap();
+    assert_eq!(after.model.config.lambdas, new);
+    assert_eq!(after.training.steps, 12);
+    let rows = after.model.gains.y.to_vec2::<f32>().unwrap();
+    assert_eq!(rows.len(), new.len());
+    // The added top anchor asks for a finer quantizer than the old top one, on average.
+    let mean = |r: &[f32]| r.iter().sum::<f32>() / r.len() as f32;
+    assert!(mean(&rows[new.len() - 1]) > mean(&rows[new.len() - 2]));
+    let codec = Codec::new(after).unwrap();
+    let pic = synthetic_picture(128, 128, 3, 5);
+    assert!(codec.encode(&pic, 100.0).unwrap().bytes.len() > codec.encode(&pic, 1.0).unwrap().bytes.len());
 }

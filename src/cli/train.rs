@@ -62,6 +62,11 @@ pub struct TrainArgs {
     /// Stop after this many steps of this invocation (checkpoint and export; resume later).
     #[arg(long)]
     stop_after: Option<u64>,
+    /// Trade-off anchors λ, comma-separated and increasing (loss = bpp + λ·MSE on 0–255). With
+    /// --init or --resume the model's gain tables are re-targeted to them (e.g. to add higher
+    /// qualities); quality 1 maps to the first, 100 to the last.
+    #[arg(long, value_delimiter = ',')]
+    lambdas: Option<Vec<f64>>,
     /// Print plain log lines instead of a progress bar.
     #[arg(long)]
     log: bool,
@@ -102,6 +107,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         decay_from: a.decay_from,
         distortion: a.distortion,
         stop_after: a.stop_after,
+        lambdas: a.lambdas,
         progress: !a.log,
     };
     kiln::train::train(&opts)?;

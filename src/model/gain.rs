@@ -73,3 +73,64 @@ impl GainUnits {
         lg.exp()?.reshape((b, c, 1, 1))
     }
 }
+
+/// Names of the four gain tables in a model's weights.
+pub const GAIN_TABLES: [&str; 4] = ["gain.y", "gain.y_inv", "gain.z", "gain.z_inv"];
+
+/// Re-targets log-gain tables `(L_old, C)` trained at anchors `old` to new anchors `new`.
+///
+/// Each new row is the old rows' log-gains interpolated linearly in `ln λ` between the two old
+/// anchors around it, and extrapolated along the first or last segment outside `old`'s range:
+/// the same exponential interpolation the codec uses between anchors, continued. A new anchor
+/// equal to an old one gets that row exactly. Both lists must be increasing with at least two
+/// entries (as [`ModelConfig::validate`] demands).
+///
+/// ```
+/// use candle_core::{Device, Tensor};
+/// use kiln::model::gain::retarget_rows;
+/// let old = Tensor::new(&[[0.0f32], [1.0]], &Device::Cpu).unwrap();
+/// let out = retarget_rows(&old, &[1.0, std::f64::consts::E], &[std::f64::consts::E.powi(2)]).unwrap();
+/// assert!((out.to_vec2::<f32>().unwrap()[0][0] - 2.0).abs() < 1e-6);
+/// ```
+pub fn retarget_rows(table: &Tensor, old: &[f64], new: &[f64]) -> Result<Tensor> {
+    let rows = table.to_vec2::<f32>()?;
+    if rows.len() != old.len() || old.len() < 2 {
+        candle_core::bail!("gain table has {} rows for {} anchors", rows.len(), old.len());
+    }
+    let lo: Vec<f64> = old.iter().map(|l| l.ln()).collect();
+    let mut out: Vec<Vec<f32>> = Vec::with_capacity(new.len());
+    for &lam in new {
+        let t = lam.ln();
+        if let Some(i) = old.iter().position(|&o| o == lam) {
+            out.push(rows[i].clone());
+            continue;
+        }
+        let seg = lo.windows(2).position(|w| t < w[1]).unwrap_or(lo.len() - 2);
+        let w = ((t - lo[seg]) / (lo[seg + 1] - lo[seg])) as f32;
+        out.push(rows[seg].iter().zip(&rows[seg + 1]).map(|(a, b)| a * (1.0 - w) + b * w).collect());
+    }
+    let c = rows[0].len();
+    Tensor::from_vec(out.concat(), (new.len(), c), table.device())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use candle_core::Device;
+
+    #[test]
+    fn retargeting_is_exact_for_log_gains_linear_in_log_lambda() {
+        // log-gain = a + b·ln λ per channel, interpolated and extrapolated exactly.
+        let old = [0.01, 0.02, 0.08];
+        let row = |l: f64| [(0.3 + 0.5 * l.ln()) as f32, (-1.0 + 0.25 * l.ln()) as f32];
+        let table = Tensor::new(&[row(old[0]), row(old[1]), row(old[2])], &Device::Cpu).unwrap();
+        let new = [0.005, 0.02, 0.04, 0.32];
+        let got = retarget_rows(&table, &old, &new).unwrap().to_vec2::<f32>().unwrap();
+        for (g, &l) in got.iter().zip(&new) {
+            for (a, b) in g.iter().zip(row(l)) {
+                assert!((a - b).abs() < 1e-5, "λ {l}: {a} vs {b}");
+            }
+        }
+        assert!(retarget_rows(&table, &old[..2], &new).is_err());
+    }
+}

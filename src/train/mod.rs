@@ -11,6 +11,7 @@ pub mod data;
 pub mod distortion;
 pub mod optim;
 
+use std::collections::HashMap;
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
@@ -24,6 +25,7 @@ use crate::error::{KilnError, Result};
 use crate::image_io::write_atomic;
 use crate::metrics::psnr;
 use crate::model::config::HYPER_STRIDE;
+use crate::model::gain::{GAIN_TABLES, retarget_rows};
 use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix};
 use checkpoint::CheckpointMeta;
 use data::ImageSet;
@@ -77,6 +79,10 @@ pub struct TrainOptions {
     /// Stop (checkpoint and export) after this many steps of this invocation, to train in
     /// time-boxed chunks; `--resume` continues on the same schedule.
     pub stop_after: Option<u64>,
+    /// Trade-off anchors λ. For a new model they replace the configuration's; with `init` or
+    /// `resume` the gain tables are re-targeted to them ([`retarget_rows`]), e.g. to extend a
+    /// model's quality range upwards. `None` keeps the model's own.
+    pub lambdas: Option<Vec<f64>>,
     /// Show a progress bar.
     pub progress: bool,
 }
@@ -132,9 +138,35 @@ struct Run {
     averages: Option<(f64, f64, f64)>,
 }
 
+/// Re-targets the gain tables in `tensors` from anchors `old` to `new`. Adam moments of the gain
+/// tables (when present) keep the rows of anchors that stay and start from zero for new ones.
+fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64]) -> Result<()> {
+    for name in GAIN_TABLES {
+        let t = tensors.get(name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?;
+        let t = retarget_rows(t, old, new)?;
+        tensors.insert(name.to_string(), t);
+        for moment in [format!("adam.m.{name}"), format!("adam.v.{name}")] {
+            let Some(m) = tensors.get(&moment) else { continue };
+            let rows = m.to_vec2::<f32>()?;
+            let c = rows.first().map_or(0, Vec::len);
+            let kept: Vec<f32> = new
+                .iter()
+                .flat_map(|l| old.iter().position(|o| o == l).map_or(vec![0.0; c], |i| rows[i].clone()))
+                .collect();
+            tensors.insert(moment, Tensor::from_vec(kept, (new.len(), c), &Device::Cpu)?);
+        }
+    }
+    eprintln!("trade-off anchors re-targeted from {old:?} to {new:?}");
+    Ok(())
+}
+
 fn start(o: &TrainOptions) -> Result<Run> {
     if let Some(ck) = &o.resume {
-        let (meta, tensors) = checkpoint::load(ck)?;
+        let (mut meta, mut tensors) = checkpoint::load(ck)?;
+        if let Some(new) = o.lambdas.as_ref().filter(|l| **l != meta.config.lambdas) {
+            retarget_gains(&mut tensors, &meta.config.lambdas, new)?;
+            meta.config.lambdas = new.clone();
+        }
         let model = Model::new(meta.config.clone(), o.seed)?;
         model.load_weights(&tensors)?;
         let mut adam = Adam::new(model.named_vars(), AdamConfig::default())?;
@@ -143,10 +175,28 @@ fn start(o: &TrainOptions) -> Result<Run> {
         return Ok(Run { model, adam, rng: meta.rng(), step: meta.step, init: meta.init, averages: meta.averages });
     }
     let (model, init) = match &o.init {
-        Init::Fresh(c) => (Model::new(c.clone(), o.seed)?, None),
+        Init::Fresh(c) => {
+            let mut c = c.clone();
+            if let Some(l) = &o.lambdas {
+                c.lambdas = l.clone();
+            }
+            (Model::new(c, o.seed)?, None)
+        }
         Init::FineTune(p) => {
             let f = ModelFile::load(p.as_deref())?;
-            (f.model, Some(hex_prefix(&f.fingerprint, 8)))
+            let fingerprint = Some(hex_prefix(&f.fingerprint, 8));
+            match o.lambdas.as_ref().filter(|l| **l != f.model.config.lambdas) {
+                None => (f.model, fingerprint),
+                Some(new) => {
+                    let mut tensors: HashMap<String, Tensor> =
+                        f.model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
+                    retarget_gains(&mut tensors, &f.model.config.lambdas, new)?;
+                    let config = ModelConfig { lambdas: new.clone(), ..f.model.config.clone() };
+                    let model = Model::new(config, o.seed)?;
+                    model.load_weights(&tensors)?;
+                    (model, fingerprint)
+                }
+            }
         }
     };
     let adam = Adam::new(model.named_vars(), AdamConfig::default())?;
