@@ -1,5 +1,5 @@
 //! Times the pieces of one training step of the shipped config (batch 8, 128×128).
-//! `cargo run --release --example profile_step`
+//! `cargo run --release --example profile_step` (`KILN_PROFILE_ONLY=step`: only the whole step)
 
 use std::time::Instant;
 
@@ -20,6 +20,22 @@ fn time<T>(label: &str, reps: usize, mut f: impl FnMut() -> T) -> f64 {
 
 fn main() -> candle_core::Result<()> {
     let dev = Device::Cpu;
+    if std::env::var("KILN_PROFILE_ONLY").as_deref() == Ok("step") {
+        // Only the whole step on the fast kernels, for `perf record`.
+        let model = Model::new(ModelConfig::default(), 1).unwrap();
+        let img = Tensor::rand(0f32, 1.0, (8, 3, 128, 128), &dev)?;
+        let idx = Tensor::new(&[0u32, 1, 2, 3, 4, 0, 1, 2], &dev)?;
+        let wt = Tensor::new(&[0.5f32; 8], &dev)?;
+        let ny = Tensor::zeros((8, 96, 8, 8), candle_core::DType::F32, &dev)?;
+        let nz = Tensor::zeros((8, 64, 2, 2), candle_core::DType::F32, &dev)?;
+        time("Fast whole step fwd+bwd", 10, || {
+            let o = model.forward_train(&img, &idx, &wt, &ny, &nz).unwrap();
+            let l =
+                ((o.x_hat - &img).unwrap().sqr().unwrap().mean_all().unwrap() + o.bits_y.sum_all().unwrap()).unwrap();
+            l.backward().unwrap()
+        });
+        return Ok(());
+    }
     let x = Var::from_tensor(&Tensor::rand(-1f32, 1.0, (8, 64, 64, 64), &dev)?)?;
     let w = Var::from_tensor(&Tensor::rand(-0.1f32, 0.1, (64, 64, 5, 5), &dev)?)?;
     let bias = Var::from_tensor(&Tensor::zeros(64, candle_core::DType::F32, &dev)?)?;

@@ -11,7 +11,7 @@ use candle_core::{CpuStorage, CustomOp3, Layout, Result, Shape, Tensor, bail};
 use rayon::prelude::*;
 
 use super::conv::contiguous_f32;
-use super::fused_conv::View;
+use super::fused_conv::{View, batch_parallel, for_each_chunk};
 
 /// `dst (m × n, row-major) [+]= lhs (m × k, strides) · rhs (k × n, strides)`, on gemm.
 #[allow(clippy::too_many_arguments)]
@@ -35,12 +35,95 @@ fn matmul(
 
 /// `n = γ·x² + β` for one image `(C, P)`.
 fn norm(x: &[f32], beta: &[f32], gamma: &[f32], c: usize, p: usize, n: &mut [f32]) {
-    let x2: Vec<f32> = x.par_iter().map(|v| v * v).collect();
+    let mut x2 = vec![0f32; x.len()];
+    for_each_chunk(&mut x2, p, |ch, row| row.iter_mut().zip(&x[ch * p..][..p]).for_each(|(o, v)| *o = v * v));
     matmul(c, p, c, n, false, gamma, c, 1, &x2, p, 1);
-    n.par_chunks_mut(p).zip(beta.par_iter()).for_each(|(row, &b)| row.iter_mut().for_each(|v| *v += b));
+    for_each_chunk(n, p, |ch, row| row.iter_mut().for_each(|v| *v += beta[ch]));
+}
+
+/// GDN of one image `(C, P)` into `y`, with `n` as scratch.
+#[allow(clippy::too_many_arguments)]
+fn forward_image(
+    x: &[f32],
+    beta: &[f32],
+    gamma: &[f32],
+    c: usize,
+    p: usize,
+    inverse: bool,
+    n: &mut [f32],
+    y: &mut [f32],
+) {
+    norm(x, beta, gamma, c, p, n);
+    let n = &*n;
+    for_each_chunk(y, p, |ch, row| {
+        for ((o, &xv), &nv) in row.iter_mut().zip(&x[ch * p..][..p]).zip(&n[ch * p..][..p]) {
+            *o = if inverse { xv * nv.sqrt() } else { xv / nv.sqrt() };
+        }
+    });
+}
+
+/// Parameter gradients of a group of images: `dγ (C × C)` and `dβ (C)`.
+struct GdnParamGrads {
+    dgamma: Vec<f32>,
+    dbeta: Vec<f64>,
+}
+
+/// Backward over consecutive images `x`, `dy` (each `k · C · P`), writing `dx` and returning the
+/// group's parameter gradients.
+#[allow(clippy::too_many_arguments)]
+fn backward_images(
+    x: &[f32],
+    dy: &[f32],
+    beta: &[f32],
+    gamma: &[f32],
+    c: usize,
+    p: usize,
+    inverse: bool,
+    dx: &mut [f32],
+) -> GdnParamGrads {
+    let mut out = GdnParamGrads { dgamma: vec![0f32; c * c], dbeta: vec![0f64; c] };
+    let (mut n, mut g, mut gt, mut x2) = (vec![0f32; c * p], vec![0f32; c * p], vec![0f32; c * p], vec![0f32; c * p]);
+    for (i, ((xb, dyb), dxb)) in x.chunks(c * p).zip(dy.chunks(c * p)).zip(dx.chunks_mut(c * p)).enumerate() {
+        norm(xb, beta, gamma, c, p, &mut n);
+        // g = dy · ∂y/∂n (into g), and the direct term dy·s (into dx).
+        let nn = &n;
+        for_each_chunk(&mut g, p, |ch, row| {
+            let r = ch * p..(ch + 1) * p;
+            for ((gv, &xv), (&d, &nv)) in row.iter_mut().zip(&xb[r.clone()]).zip(dyb[r.clone()].iter().zip(&nn[r])) {
+                let s = nv.sqrt();
+                *gv = if inverse { d * 0.5 * xv / s } else { -0.5 * d * xv / (nv * s) };
+            }
+        });
+        for_each_chunk(dxb, p, |ch, row| {
+            let r = ch * p..(ch + 1) * p;
+            for ((o, &d), &nv) in row.iter_mut().zip(&dyb[r.clone()]).zip(&nn[r]) {
+                *o = if inverse { d * nv.sqrt() } else { d / nv.sqrt() };
+            }
+        });
+        // γᵀ g: (C × C)ᵀ · (C × P), then dx += 2x·(γᵀg).
+        matmul(c, p, c, &mut gt, false, gamma, 1, c, &g, p, 1);
+        let gtr = &gt;
+        for_each_chunk(dxb, p, |ch, row| {
+            let r = ch * p..(ch + 1) * p;
+            for ((d, &xv), &t) in row.iter_mut().zip(&xb[r.clone()]).zip(&gtr[r]) {
+                *d += 2.0 * xv * t;
+            }
+        });
+        // dγ += g · (x²)ᵀ: (C × P) · (P × C).
+        x2.iter_mut().zip(xb).for_each(|(o, v)| *o = v * v);
+        matmul(c, c, p, &mut out.dgamma, i > 0, &g, p, 1, &x2, 1, p);
+        for (ch, db) in out.dbeta.iter_mut().enumerate() {
+            *db += g[ch * p..(ch + 1) * p].iter().map(|&v| v as f64).sum::<f64>();
+        }
+    }
+    out
 }
 
 /// Forward (`inverse == false`) or inverse GDN over `(B, C, H, W)` with `β (C)`, `γ (C, C)`.
+///
+/// With several images per thread the images run in parallel (one per task); the parameter
+/// gradients are summed per fixed group of images and the groups added in order, so results
+/// depend on the thread count only, never on scheduling.
 #[derive(Debug, Clone, Copy)]
 pub struct FusedGdn {
     /// Multiply by `√n` instead of dividing.
@@ -68,16 +151,16 @@ impl CustomOp3 for FusedGdn {
         }
         let p = h * w;
         let mut y = vec![0f32; x.len()];
-        let mut n = vec![0f32; c * p];
-        for bi in 0..b {
-            let xb = &x[bi * c * p..(bi + 1) * c * p];
-            norm(xb, beta, gamma, c, p, &mut n);
-            let inverse = self.inverse;
-            y[bi * c * p..(bi + 1) * c * p].par_iter_mut().zip(xb.par_iter().zip(n.par_iter())).for_each(
-                |(o, (&xv, &nv))| {
-                    *o = if inverse { xv * nv.sqrt() } else { xv / nv.sqrt() };
-                },
-            );
+        let inverse = self.inverse;
+        let image = |bi: usize, yb: &mut [f32], n: &mut Vec<f32>| {
+            forward_image(&x[bi * c * p..(bi + 1) * c * p], beta, gamma, c, p, inverse, n, yb)
+        };
+        let scratch = || vec![0f32; c * p];
+        if batch_parallel(b) {
+            y.par_chunks_mut(c * p).enumerate().for_each_init(scratch, |n, (bi, yb)| image(bi, yb, n));
+        } else {
+            let mut n = scratch();
+            y.chunks_mut(c * p).enumerate().for_each(|(bi, yb)| image(bi, yb, &mut n));
         }
         Ok((CpuStorage::F32(y), l1.shape().clone()))
     }
@@ -97,48 +180,28 @@ impl CustomOp3 for FusedGdn {
         let be = beta.to_vec1::<f32>()?;
         let ga = gamma.flatten_all()?.to_vec1::<f32>()?;
         let mut dx = vec![0f32; xs.len()];
-        let mut dgamma = vec![0f32; c * c];
-        let mut dbeta = vec![0f64; c];
-        let mut n = vec![0f32; c * p];
-        let mut g = vec![0f32; c * p];
-        let mut gt = vec![0f32; c * p];
-        for bi in 0..b {
-            let range = bi * c * p..(bi + 1) * c * p;
-            let (xb, dyb) = (&xs[range.clone()], &dys[range.clone()]);
-            norm(xb, &be, &ga, c, p, &mut n);
-            let inverse = self.inverse;
-            // g = dy · ∂y/∂n, and the direct term dy·s into dx.
-            g.par_iter_mut()
-                .zip(dx[range.clone()].par_iter_mut())
-                .zip(xb.par_iter().zip(dyb.par_iter().zip(n.par_iter())))
-                .for_each(|((gv, dxv), (&xv, (&dy, &nv)))| {
-                    let r = nv.sqrt();
-                    if inverse {
-                        *gv = dy * 0.5 * xv / r;
-                        *dxv = dy * r;
-                    } else {
-                        *gv = -0.5 * dy * xv / (nv * r);
-                        *dxv = dy / r;
-                    }
-                });
-            // γᵀ g: (C × C)ᵀ · (C × P).
-            matmul(c, p, c, &mut gt, false, &ga, 1, c, &g, p, 1);
-            dx[range]
-                .par_iter_mut()
-                .zip(xb.par_iter().zip(gt.par_iter()))
-                .for_each(|(d, (&xv, &t))| *d += 2.0 * xv * t);
-            // dγ += g · (x²)ᵀ: (C × P) · (P × C).
-            let x2: Vec<f32> = xb.par_iter().map(|v| v * v).collect();
-            matmul(c, c, p, &mut dgamma, bi > 0, &g, p, 1, &x2, 1, p);
-            for (ch, db) in dbeta.iter_mut().enumerate() {
-                *db += g[ch * p..(ch + 1) * p].iter().map(|&v| v as f64).sum::<f64>();
-            }
+        let inverse = self.inverse;
+        let groups = if batch_parallel(b) { rayon::current_num_threads().min(b) } else { 1 };
+        let per = b.div_ceil(groups) * c * p;
+        let run = |(i, dxg): (usize, &mut [f32])| {
+            let r = i * per..(i * per + dxg.len());
+            backward_images(&xs[r.clone()], &dys[r], &be, &ga, c, p, inverse, dxg)
+        };
+        let parts: Vec<GdnParamGrads> = if groups > 1 {
+            dx.par_chunks_mut(per).enumerate().map(run).collect()
+        } else {
+            dx.chunks_mut(per).enumerate().map(run).collect()
+        };
+        let mut total = GdnParamGrads { dgamma: vec![0f32; c * c], dbeta: vec![0f64; c] };
+        for part in &parts {
+            total.dgamma.iter_mut().zip(&part.dgamma).for_each(|(t, v)| *t += v);
+            total.dbeta.iter_mut().zip(&part.dbeta).for_each(|(t, v)| *t += v);
         }
         let dev = x.device();
         Ok((
             Some(Tensor::from_vec(dx, (b, c, h, w), dev)?),
-            Some(Tensor::from_vec(dbeta.into_iter().map(|v| v as f32).collect::<Vec<_>>(), c, dev)?),
-            Some(Tensor::from_vec(dgamma, (c, c), dev)?),
+            Some(Tensor::from_vec(total.dbeta.into_iter().map(|v| v as f32).collect::<Vec<_>>(), c, dev)?),
+            Some(Tensor::from_vec(total.dgamma, (c, c), dev)?),
         ))
     }
 }
