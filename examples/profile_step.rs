@@ -7,6 +7,9 @@ use candle_core::{Device, Module, Tensor, Var};
 use kiln::kernels::conv::{self, ConvBackend};
 use kiln::{Model, ModelConfig};
 
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 fn time<T>(label: &str, reps: usize, mut f: impl FnMut() -> T) -> f64 {
     f();
     let t = Instant::now();
@@ -20,6 +23,22 @@ fn time<T>(label: &str, reps: usize, mut f: impl FnMut() -> T) -> f64 {
 
 fn main() -> candle_core::Result<()> {
     let dev = Device::Cpu;
+    if std::env::var("KILN_PROFILE_ONLY").as_deref() == Ok("gdn") {
+        let vm = candle_nn::VarMap::new();
+        let vb = candle_nn::VarBuilder::from_varmap(&vm, candle_core::DType::F32, &dev);
+        let gdn = kiln::model::gdn::Gdn::new(64, kiln::model::gdn::GdnDirection::Forward, vb)?;
+        let xg = Var::from_tensor(&Tensor::rand(-1f32, 1.0, (8, 64, 64, 64), &dev)?)?;
+        let flops = 2.0 * 8.0 * 64.0 * 64.0 * 4096.0;
+        let s = time("GDN 64ch 64x64 b8 fwd", 5, || gdn.forward(xg.as_tensor()).unwrap());
+        println!("{:40} {:8.1} GFLOP/s", "", flops / s / 1e9);
+        let s = time("GDN fwd+bwd", 5, || gdn.forward(xg.as_tensor()).unwrap().sum_all().unwrap().backward().unwrap());
+        println!("{:40} {:8.1} GFLOP/s", "", 4.0 * flops / s / 1e9);
+        let a = Tensor::rand(-1f32, 1.0, (64, 64), &dev)?;
+        let bm = Tensor::rand(-1f32, 1.0, (64, 4096 * 8), &dev)?;
+        let s = time("candle matmul 64x64 . 64x32768", 5, || a.matmul(&bm).unwrap());
+        println!("{:40} {:8.1} GFLOP/s", "", flops / s / 1e9);
+        return Ok(());
+    }
     if std::env::var("KILN_PROFILE_ONLY").as_deref() == Ok("step") {
         // Only the whole step on the fast kernels, for `perf record`.
         let model = Model::new(ModelConfig::default(), 1).unwrap();
