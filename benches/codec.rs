@@ -2,6 +2,10 @@
 //! photograph, with PNG and JPEG of the same image in the same groups (pixels/s), and candle's
 //! matmul as the ruler for the decoder's GFLOP/s.
 
+// The allocator the kiln binary uses, so that timings match it.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 use criterion::{Criterion, Throughput, criterion_group, criterion_main};
 use kiln::eval::baselines::{decode_jpeg, encode_jpeg};
 use kiln::{AlphaPolicy, Codec, ModelFile, Picture};

@@ -2,6 +2,10 @@
 //! of equal FLOPs, forward and forward+backward; and one training step with each backend.
 //! Throughput is reported in elements = FLOPs, so criterion's "elem/s" reads as FLOP/s.
 
+// The allocator the kiln binary uses, so that timings match it.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 use candle_core::{DType, Device, Tensor, Var};
 use criterion::{Criterion, Throughput, criterion_group, criterion_main};
 use kiln::kernels::conv::{self, ConvBackend};

@@ -7,7 +7,7 @@
 //! The three products run on gemm, one image at a time; everything else is one pass over the
 //! data. `β` and `γ` come in already re-parameterised, so candle differentiates that part.
 
-use candle_core::{CpuStorage, CustomOp3, Layout, Result, Shape, Tensor, bail};
+use candle_core::{CpuStorage, CustomOp2, CustomOp3, Layout, Result, Shape, Tensor, bail};
 use rayon::prelude::*;
 
 use super::conv::contiguous_f32;
@@ -85,21 +85,24 @@ fn backward_images(
     let (mut n, mut g, mut gt, mut x2) = (vec![0f32; c * p], vec![0f32; c * p], vec![0f32; c * p], vec![0f32; c * p]);
     for (i, ((xb, dyb), dxb)) in x.chunks(c * p).zip(dy.chunks(c * p)).zip(dx.chunks_mut(c * p)).enumerate() {
         norm(xb, beta, gamma, c, p, &mut n);
-        // g = dy · ∂y/∂n (into g), and the direct term dy·s (into dx).
+        // One pass: g = dy · ∂y/∂n (into g) and the direct term dy·s (into dx).
         let nn = &n;
-        for_each_chunk(&mut g, p, |ch, row| {
+        for (ch, (grow, drow)) in g.chunks_mut(p).zip(dxb.chunks_mut(p)).enumerate() {
             let r = ch * p..(ch + 1) * p;
-            for ((gv, &xv), (&d, &nv)) in row.iter_mut().zip(&xb[r.clone()]).zip(dyb[r.clone()].iter().zip(&nn[r])) {
+            let (xs, ds, ns) = (&xb[r.clone()], &dyb[r.clone()], &nn[r]);
+            for i in 0..p {
+                let (xv, d, nv) = (xs[i], ds[i], ns[i]);
                 let s = nv.sqrt();
-                *gv = if inverse { d * 0.5 * xv / s } else { -0.5 * d * xv / (nv * s) };
+                if inverse {
+                    grow[i] = d * 0.5 * xv / s;
+                    drow[i] = d * s;
+                } else {
+                    let inv = 1.0 / s;
+                    drow[i] = d * inv;
+                    grow[i] = -0.5 * d * xv * inv / nv;
+                }
             }
-        });
-        for_each_chunk(dxb, p, |ch, row| {
-            let r = ch * p..(ch + 1) * p;
-            for ((o, &d), &nv) in row.iter_mut().zip(&dyb[r.clone()]).zip(&nn[r]) {
-                *o = if inverse { d * nv.sqrt() } else { d / nv.sqrt() };
-            }
-        });
+        }
         // γᵀ g: (C × C)ᵀ · (C × P), then dx += 2x·(γᵀg).
         matmul(c, p, c, &mut gt, false, gamma, 1, c, &g, p, 1);
         let gtr = &gt;
@@ -174,34 +177,62 @@ impl CustomOp3 for FusedGdn {
         grad: &Tensor,
     ) -> Result<(Option<Tensor>, Option<Tensor>, Option<Tensor>)> {
         let (b, c, h, w) = x.dims4()?;
+        let op = FusedGdnGrad {
+            inverse: self.inverse,
+            beta: beta.to_vec1::<f32>()?,
+            gamma: gamma.flatten_all()?.to_vec1::<f32>()?,
+        };
+        // One buffer [dx | dβ | dγ], split by views.
+        let all = x.contiguous()?.apply_op2_no_bwd(&grad.contiguous()?, &op)?;
+        let n = b * c * h * w;
+        Ok((
+            Some(all.narrow(0, 0, n)?.reshape((b, c, h, w))?),
+            Some(all.narrow(0, n, c)?),
+            Some(all.narrow(0, n + c, c * c)?.reshape((c, c))?),
+        ))
+    }
+}
+
+/// The backward pass of [`FusedGdn`] over `(x, dy)`, both `(B, C, H, W)`: returns `dx`, `dβ`
+/// and `dγ` flattened into one buffer, read straight from the tensors' storage.
+#[derive(Debug, Clone)]
+struct FusedGdnGrad {
+    inverse: bool,
+    beta: Vec<f32>,
+    gamma: Vec<f32>,
+}
+
+impl CustomOp2 for FusedGdnGrad {
+    fn name(&self) -> &'static str {
+        "kiln-fused-gdn-grad"
+    }
+
+    fn cpu_fwd(&self, s1: &CpuStorage, l1: &Layout, s2: &CpuStorage, l2: &Layout) -> Result<(CpuStorage, Shape)> {
+        let (b, c, h, w) = l1.shape().dims4()?;
+        let (xs, dys) = (contiguous_f32(s1, l1)?, contiguous_f32(s2, l2)?);
         let p = h * w;
-        let xs = x.flatten_all()?.to_vec1::<f32>()?;
-        let dys = grad.contiguous()?.flatten_all()?.to_vec1::<f32>()?;
-        let be = beta.to_vec1::<f32>()?;
-        let ga = gamma.flatten_all()?.to_vec1::<f32>()?;
-        let mut dx = vec![0f32; xs.len()];
-        let inverse = self.inverse;
+        let (be, ga, inverse) = (&self.beta, &self.gamma, self.inverse);
+        let mut dx = vec![0f32; xs.len() + c + c * c];
         let groups = if batch_parallel(b) { rayon::current_num_threads().min(b) } else { 1 };
         let per = b.div_ceil(groups) * c * p;
         let run = |(i, dxg): (usize, &mut [f32])| {
             let r = i * per..(i * per + dxg.len());
-            backward_images(&xs[r.clone()], &dys[r], &be, &ga, c, p, inverse, dxg)
+            backward_images(&xs[r.clone()], &dys[r], be, ga, c, p, inverse, dxg)
         };
+        let (dxs, params) = dx.split_at_mut(xs.len());
         let parts: Vec<GdnParamGrads> = if groups > 1 {
-            dx.par_chunks_mut(per).enumerate().map(run).collect()
+            dxs.par_chunks_mut(per).enumerate().map(run).collect()
         } else {
-            dx.chunks_mut(per).enumerate().map(run).collect()
+            dxs.chunks_mut(per).enumerate().map(run).collect()
         };
-        let mut total = GdnParamGrads { dgamma: vec![0f32; c * c], dbeta: vec![0f64; c] };
+        let mut dbeta = vec![0f64; c];
+        let (db, dg) = params.split_at_mut(c);
         for part in &parts {
-            total.dgamma.iter_mut().zip(&part.dgamma).for_each(|(t, v)| *t += v);
-            total.dbeta.iter_mut().zip(&part.dbeta).for_each(|(t, v)| *t += v);
+            dg.iter_mut().zip(&part.dgamma).for_each(|(t, v)| *t += v);
+            dbeta.iter_mut().zip(&part.dbeta).for_each(|(t, v)| *t += v);
         }
-        let dev = x.device();
-        Ok((
-            Some(Tensor::from_vec(dx, (b, c, h, w), dev)?),
-            Some(Tensor::from_vec(total.dbeta.into_iter().map(|v| v as f32).collect::<Vec<_>>(), c, dev)?),
-            Some(Tensor::from_vec(total.dgamma, (c, c), dev)?),
-        ))
+        db.iter_mut().zip(&dbeta).for_each(|(o, v)| *o = *v as f32);
+        let n = dx.len();
+        Ok((CpuStorage::F32(dx), Shape::from(n)))
     }
 }
