@@ -33,6 +33,15 @@ fn main() -> candle_core::Result<()> {
         println!("{:40} {:8.1} GFLOP/s", "", flops / s / 1e9);
         let s = time("GDN fwd+bwd", 5, || gdn.forward(xg.as_tensor()).unwrap().sum_all().unwrap().backward().unwrap());
         println!("{:40} {:8.1} GFLOP/s", "", 4.0 * flops / s / 1e9);
+        // The decoder's widest inverse GDN: one 768×512 image, 64 channels at 384×256.
+        let igdn = kiln::model::gdn::Gdn::new(
+            64,
+            kiln::model::gdn::GdnDirection::Inverse,
+            candle_nn::VarBuilder::from_varmap(&vm, candle_core::DType::F32, &dev).pp("i"),
+        )?;
+        let xd = Tensor::rand(-1f32, 1.0, (1, 64, 256, 384), &dev)?;
+        let s = time("IGDN 64ch 384x256 b1 fwd (decoder)", 5, || igdn.forward(&xd).unwrap());
+        println!("{:40} {:8.1} GFLOP/s", "", 2.0 * 64.0 * 64.0 * 98304.0 / s / 1e9);
         let a = Tensor::rand(-1f32, 1.0, (64, 64), &dev)?;
         let bm = Tensor::rand(-1f32, 1.0, (64, 4096 * 8), &dev)?;
         let s = time("candle matmul 64x64 . 64x32768", 5, || a.matmul(&bm).unwrap());

@@ -37,14 +37,64 @@ pub(crate) fn matmul(
     lhs: View,
     rhs: View,
 ) {
+    let shared = SharedDst { ptr: dst.as_mut_ptr(), len: dst.len() };
+    // SAFETY: `dst` is borrowed mutably for the whole call, so nothing else writes it.
+    unsafe { matmul_shared(m, n, k, shared, 0, dst_rs, dst_cs, accumulate, lhs, rhs) }
+}
+
+/// An output buffer that several tasks write at once, each to its own elements (a tile of
+/// output positions across every channel plane: not a contiguous sub-slice, so it cannot be
+/// split with `chunks_mut`).
+#[derive(Clone, Copy)]
+pub(crate) struct SharedDst {
+    ptr: *mut f32,
+    len: usize,
+}
+
+// SAFETY: a `SharedDst` is only written through `matmul_shared`, whose contract makes callers
+// keep the element sets of concurrent writers disjoint.
+unsafe impl Send for SharedDst {}
+unsafe impl Sync for SharedDst {}
+
+impl SharedDst {
+    /// Shares `dst` for the lifetime of the borrow the caller holds.
+    pub(crate) fn new(dst: &mut [f32]) -> Self {
+        SharedDst { ptr: dst.as_mut_ptr(), len: dst.len() }
+    }
+}
+
+/// [`matmul`] into `dst` starting at element `offset`.
+///
+/// # Safety
+/// No other thread may read or write the elements this product writes
+/// (`offset + i·dst_rs + j·dst_cs` for `i < m`, `j < n`) during the call, and the buffer behind
+/// `dst` must outlive it. Bounds are checked here.
+#[allow(clippy::too_many_arguments)]
+pub(crate) unsafe fn matmul_shared(
+    m: usize,
+    n: usize,
+    k: usize,
+    dst: SharedDst,
+    offset: usize,
+    dst_rs: usize,
+    dst_cs: usize,
+    accumulate: bool,
+    lhs: View,
+    rhs: View,
+) {
     let last = |rows: usize, cols: usize, rs: usize, cs: usize| (rows - 1) * rs + (cols - 1) * cs;
     if m == 0 || n == 0 {
         return;
     }
-    assert!(last(m, n, dst_rs, dst_cs) < dst.len(), "matmul: destination too small");
+    assert!(offset + last(m, n, dst_rs, dst_cs) < dst.len, "matmul: destination too small");
     if k == 0 {
         if !accumulate {
-            dst.iter_mut().for_each(|v| *v = 0.0);
+            for i in 0..m {
+                for j in 0..n {
+                    // SAFETY: in bounds (checked above), and ours alone by the contract.
+                    unsafe { *dst.ptr.add(offset + i * dst_rs + j * dst_cs) = 0.0 };
+                }
+            }
         }
         return;
     }
@@ -52,14 +102,15 @@ pub(crate) fn matmul(
     assert!(last(k, n, rhs.rs, rhs.cs) < rhs.data.len(), "matmul: rhs too small");
     let threads = rayon::current_num_threads();
     let par = if threads > 1 && !nested() { Parallelism::Rayon(threads) } else { Parallelism::None };
-    // SAFETY: every index the product touches was checked against the slice lengths above;
-    // dst does not alias lhs or rhs (it is borrowed mutably).
+    // SAFETY: every index the product touches was checked against the buffer lengths above;
+    // the written elements belong to this call alone (the caller's contract), and dst does not
+    // alias lhs or rhs (those are shared borrows, dst a buffer the caller owns mutably).
     unsafe {
         gemm::gemm(
             m,
             n,
             k,
-            dst.as_mut_ptr(),
+            dst.ptr.add(offset),
             dst_cs as isize,
             dst_rs as isize,
             accumulate,
@@ -113,11 +164,13 @@ fn image_to_hwc(x: &[f32], c: usize, h: usize, w: usize, out: &mut [f32]) {
     });
 }
 
-/// Patch rows `(L × k²C)` of one HWC image.
-fn patch_rows(img: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out: &mut [f32]) {
+/// Patch rows of output rows `oys` of one HWC image: `(oys.len()·Wo × k²C)` into `out`.
+fn patch_rows(img: &[f32], g: Im2Col, h: usize, w: usize, c: usize, oys: std::ops::Range<usize>, out: &mut [f32]) {
     let (_, wo) = g.output_size(h, w);
     let row = g.k * g.k * c;
-    for_each_chunk(out, wo * row, |oy, line| {
+    let out = &mut out[..oys.len() * wo * row];
+    for_each_chunk(out, wo * row, |i, line| {
+        let oy = oys.start + i;
         line.iter_mut().for_each(|v| *v = 0.0);
         for ky in 0..g.k {
             let iy = (oy * g.stride + ky) as isize - g.pad as isize;
@@ -141,6 +194,13 @@ fn patch_rows(img: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out: &mut [f
             }
         }
     });
+}
+
+/// Output rows per tile of the forward pass: enough that a tile's patch rows (`Wo × k²C` floats
+/// per output row) fill about 512 KiB, so they are still in cache when gemm reads them, where
+/// a whole image's patch rows (56 MiB for the decoder's widest layer on a 768×512 image) are not.
+fn tile_rows(wo: usize, kk: usize) -> usize {
+    ((512 * 1024) / (wo * kk * 4).max(1)).max(1)
 }
 
 /// Sums patch-row gradients `(L × k²C)` back onto one image, written as CHW into `out`.
@@ -224,18 +284,37 @@ impl CustomOp3 for FusedConv {
         let wm = weight_matrix(wt, o, c, k);
         // Start from the bias and accumulate the product onto it.
         let mut y: Vec<f32> = (0..b * o).flat_map(|i| std::iter::repeat_n(bias[i % o], l)).collect();
-        let image = |bi: usize, dst: &mut [f32], (hwc, rows): &mut (Vec<f32>, Vec<f32>)| {
-            image_to_hwc(&x[bi * c * h * w..(bi + 1) * c * h * w], c, h, w, hwc);
-            patch_rows(hwc, g, h, w, c, rows);
-            // Yᵦᵀ (l, o) lands at o·L + l: NCHW directly.
-            matmul(l, o, kk, dst, 1, l, true, View { data: rows, rs: kk, cs: 1 }, View { data: &wm, rs: o, cs: 1 });
+        let rows_per_tile = tile_rows(wo, kk).min(ho);
+        let tiles = ho.div_ceil(rows_per_tile);
+        let scratch = || vec![0f32; rows_per_tile * wo * kk];
+        // One tile: patch rows of output rows [t·R, (t+1)·R) of image `bi`, times W, added onto
+        // those positions of every channel plane of `y` (NCHW, so Yᵀ lands at o·L + l).
+        let tile = |dst: SharedDst, hwc: &[f32], bi: usize, t: usize, rows: &mut Vec<f32>| {
+            let oys = t * rows_per_tile..((t + 1) * rows_per_tile).min(ho);
+            let n = oys.len() * wo;
+            let offset = bi * o * l + oys.start * wo;
+            patch_rows(hwc, g, h, w, c, oys, rows);
+            let (lhs, rhs) = (View { data: rows, rs: kk, cs: 1 }, View { data: &wm, rs: o, cs: 1 });
+            // SAFETY: tiles write disjoint positions (their own output rows) of each plane.
+            unsafe { matmul_shared(n, o, kk, dst, offset, 1, l, true, lhs, rhs) };
         };
-        let scratch = || (vec![0f32; h * w * c], vec![0f32; l * kk]);
+        let dst = SharedDst::new(&mut y);
+        let image = |bi: usize, hwc: &mut Vec<f32>, rows: &mut Vec<f32>| {
+            image_to_hwc(&x[bi * c * h * w..(bi + 1) * c * h * w], c, h, w, hwc);
+            if nested() || tiles == 1 {
+                (0..tiles).for_each(|t| tile(dst, hwc, bi, t, rows));
+            } else {
+                let hwc = &*hwc;
+                (0..tiles).into_par_iter().for_each_init(scratch, |rows, t| tile(dst, hwc, bi, t, rows));
+            }
+        };
         if batch_parallel(b) {
-            y.par_chunks_mut(o * l).enumerate().for_each_init(scratch, |s, (bi, dst)| image(bi, dst, s));
+            (0..b)
+                .into_par_iter()
+                .for_each_init(|| (vec![0f32; h * w * c], scratch()), |(hwc, rows), bi| image(bi, hwc, rows));
         } else {
-            let mut s = scratch();
-            y.chunks_mut(o * l).enumerate().for_each(|(bi, dst)| image(bi, dst, &mut s));
+            let (mut hwc, mut rows) = (vec![0f32; h * w * c], scratch());
+            (0..b).for_each(|bi| image(bi, &mut hwc, &mut rows));
         }
         Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))))
     }
@@ -325,7 +404,7 @@ impl CustomOp2 for FusedConvGradWeight {
             let mut rows = vec![0f32; l * kk];
             for bi in images.clone() {
                 image_to_hwc(&x[bi * c * h * w..(bi + 1) * c * h * w], c, h, w, &mut hwc);
-                patch_rows(&hwc, g, h, w, c, &mut rows);
+                patch_rows(&hwc, g, h, w, c, 0..ho, &mut rows);
                 // dW (k, o) += Σ_l Rᵦ(l, k) · dYᵦ(o, l).
                 let lhs = View { data: &rows, rs: 1, cs: kk };
                 let rhs = View { data: &dy[bi * o * l..(bi + 1) * o * l], rs: 1, cs: l };

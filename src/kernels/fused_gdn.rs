@@ -4,14 +4,14 @@
 //! `y = x · √n` (inverse). With `s = n^(∓½)` and `g_j = dy_j · ∂y_j/∂n_j`
 //! (`−½·x_j·n_j^(−3/2)` for GDN, `½·x_j·n_j^(−½)` for the inverse):
 //! `dx = dy·s + 2x·(γᵀg)`, `dγ = Σ_pixels g·(x²)ᵀ`, `dβ = Σ_pixels g`.
-//! The three products run on gemm, one image at a time; everything else is one pass over the
-//! data. `β` and `γ` come in already re-parameterised, so candle differentiates that part.
+//! The three products run on gemm over tiles of pixels (all channels of a tile at once, so the
+//! scratch stays in cache); everything else is one pass over each tile. `β` and `γ` come in already re-parameterised, so candle differentiates that part.
 
 use candle_core::{CpuStorage, CustomOp2, CustomOp3, Layout, Result, Shape, Tensor, bail};
 use rayon::prelude::*;
 
 use super::conv::contiguous_f32;
-use super::fused_conv::{View, batch_parallel, for_each_chunk};
+use super::fused_conv::{View, batch_parallel, nested};
 
 /// `dst (m × n, row-major) [+]= lhs (m × k, strides) · rhs (k × n, strides)`, on gemm.
 #[allow(clippy::too_many_arguments)]
@@ -33,33 +33,65 @@ fn matmul(
     super::fused_conv::matmul(m, n, k, dst, n, 1, acc, lhs, rhs);
 }
 
-/// `n = γ·x² + β` for one image `(C, P)`.
-fn norm(x: &[f32], beta: &[f32], gamma: &[f32], c: usize, p: usize, n: &mut [f32]) {
-    let mut x2 = vec![0f32; x.len()];
-    for_each_chunk(&mut x2, p, |ch, row| row.iter_mut().zip(&x[ch * p..][..p]).for_each(|(o, v)| *o = v * v));
-    matmul(c, p, c, n, false, gamma, c, 1, &x2, p, 1);
-    for_each_chunk(n, p, |ch, row| row.iter_mut().for_each(|v| *v += beta[ch]));
+/// Pixels per tile: every per-pixel quantity is computed for a tile of pixels at a time (all
+/// channels), so the scratch buffers stay in cache and no image-sized temporaries are made
+/// (the decoder's widest layer would otherwise allocate and page-fault three 25 MB buffers).
+const TILE: usize = 1024;
+
+/// Scratch for one tile: `x²` and `n`, each `C × TILE`.
+fn tile_scratch(c: usize) -> (Vec<f32>, Vec<f32>) {
+    (vec![0f32; c * TILE], vec![0f32; c * TILE])
 }
 
-/// GDN of one image `(C, P)` into `y`, with `n` as scratch.
+/// `x²` and `n = γ·x² + β` for pixels `p0..p0 + len` of one image `x (C, P)`, each `(C × len)`.
 #[allow(clippy::too_many_arguments)]
-fn forward_image(
+fn tile_norm(
     x: &[f32],
     beta: &[f32],
     gamma: &[f32],
     c: usize,
     p: usize,
-    inverse: bool,
+    p0: usize,
+    len: usize,
+    x2: &mut [f32],
     n: &mut [f32],
-    y: &mut [f32],
 ) {
-    norm(x, beta, gamma, c, p, n);
-    let n = &*n;
-    for_each_chunk(y, p, |ch, row| {
-        for ((o, &xv), &nv) in row.iter_mut().zip(&x[ch * p..][..p]).zip(&n[ch * p..][..p]) {
-            *o = if inverse { xv * nv.sqrt() } else { xv / nv.sqrt() };
+    for ch in 0..c {
+        let src = &x[ch * p + p0..][..len];
+        x2[ch * len..(ch + 1) * len].iter_mut().zip(src).for_each(|(o, v)| *o = v * v);
+    }
+    matmul(c, len, c, &mut n[..c * len], false, gamma, c, 1, &x2[..c * len], len, 1);
+    for (ch, row) in n[..c * len].chunks_mut(len).enumerate() {
+        row.iter_mut().for_each(|v| *v += beta[ch]);
+    }
+}
+
+/// GDN of one image `x (C, P)` into `y`, tile by tile (tiles in parallel unless [`nested`]).
+fn forward_image(x: &[f32], beta: &[f32], gamma: &[f32], c: usize, p: usize, inverse: bool, y: &mut [f32]) {
+    // Each tile gets its segment of every channel row of `y`.
+    let tiles = p.div_ceil(TILE);
+    let mut segments: Vec<Vec<&mut [f32]>> = (0..tiles).map(|_| Vec::with_capacity(c)).collect();
+    for row in y.chunks_mut(p) {
+        for (t, seg) in row.chunks_mut(TILE).enumerate() {
+            segments[t].push(seg);
         }
-    });
+    }
+    let work = |(x2, n): &mut (Vec<f32>, Vec<f32>), (t, segs): (usize, Vec<&mut [f32]>)| {
+        let (p0, len) = (t * TILE, segs[0].len());
+        tile_norm(x, beta, gamma, c, p, p0, len, x2, n);
+        for (ch, seg) in segs.into_iter().enumerate() {
+            let (xs, ns) = (&x[ch * p + p0..][..len], &n[ch * len..][..len]);
+            for ((o, &xv), &nv) in seg.iter_mut().zip(xs).zip(ns) {
+                *o = if inverse { xv * nv.sqrt() } else { xv / nv.sqrt() };
+            }
+        }
+    };
+    if nested() || tiles == 1 {
+        let mut s = tile_scratch(c);
+        segments.into_iter().enumerate().for_each(|a| work(&mut s, a));
+    } else {
+        segments.into_par_iter().enumerate().for_each_init(|| tile_scratch(c), work);
+    }
 }
 
 /// Parameter gradients of a group of images: `dγ (C × C)` and `dβ (C)`.
@@ -69,7 +101,7 @@ struct GdnParamGrads {
 }
 
 /// Backward over consecutive images `x`, `dy` (each `k · C · P`), writing `dx` and returning the
-/// group's parameter gradients.
+/// group's parameter gradients. Runs on the calling thread, tile by tile in a fixed order.
 #[allow(clippy::too_many_arguments)]
 fn backward_images(
     x: &[f32],
@@ -82,41 +114,46 @@ fn backward_images(
     dx: &mut [f32],
 ) -> GdnParamGrads {
     let mut out = GdnParamGrads { dgamma: vec![0f32; c * c], dbeta: vec![0f64; c] };
-    let (mut n, mut g, mut gt, mut x2) = (vec![0f32; c * p], vec![0f32; c * p], vec![0f32; c * p], vec![0f32; c * p]);
-    for (i, ((xb, dyb), dxb)) in x.chunks(c * p).zip(dy.chunks(c * p)).zip(dx.chunks_mut(c * p)).enumerate() {
-        norm(xb, beta, gamma, c, p, &mut n);
-        // One pass: g = dy · ∂y/∂n (into g) and the direct term dy·s (into dx).
-        let nn = &n;
-        for (ch, (grow, drow)) in g.chunks_mut(p).zip(dxb.chunks_mut(p)).enumerate() {
-            let r = ch * p..(ch + 1) * p;
-            let (xs, ds, ns) = (&xb[r.clone()], &dyb[r.clone()], &nn[r]);
-            for i in 0..p {
-                let (xv, d, nv) = (xs[i], ds[i], ns[i]);
-                let s = nv.sqrt();
-                if inverse {
-                    grow[i] = d * 0.5 * xv / s;
-                    drow[i] = d * s;
-                } else {
-                    let inv = 1.0 / s;
-                    drow[i] = d * inv;
-                    grow[i] = -0.5 * d * xv * inv / nv;
+    let (mut x2, mut n) = tile_scratch(c);
+    let (mut g, mut gt) = tile_scratch(c);
+    let mut first = true;
+    for ((xb, dyb), dxb) in x.chunks(c * p).zip(dy.chunks(c * p)).zip(dx.chunks_mut(c * p)) {
+        for p0 in (0..p).step_by(TILE) {
+            let len = TILE.min(p - p0);
+            tile_norm(xb, beta, gamma, c, p, p0, len, &mut x2, &mut n);
+            // g = dy · ∂y/∂n, and the direct term dy·s into dx.
+            for ch in 0..c {
+                let r = ch * p + p0..ch * p + p0 + len;
+                let (xs, ds, ns) = (&xb[r.clone()], &dyb[r.clone()], &n[ch * len..][..len]);
+                let (gs, dxs) = (&mut g[ch * len..][..len], &mut dxb[r]);
+                for i in 0..len {
+                    let (xv, d, nv) = (xs[i], ds[i], ns[i]);
+                    let s = nv.sqrt();
+                    if inverse {
+                        gs[i] = d * 0.5 * xv / s;
+                        dxs[i] = d * s;
+                    } else {
+                        let inv = 1.0 / s;
+                        dxs[i] = d * inv;
+                        gs[i] = -0.5 * d * xv * inv / nv;
+                    }
                 }
             }
-        }
-        // γᵀ g: (C × C)ᵀ · (C × P), then dx += 2x·(γᵀg).
-        matmul(c, p, c, &mut gt, false, gamma, 1, c, &g, p, 1);
-        let gtr = &gt;
-        for_each_chunk(dxb, p, |ch, row| {
-            let r = ch * p..(ch + 1) * p;
-            for ((d, &xv), &t) in row.iter_mut().zip(&xb[r.clone()]).zip(&gtr[r]) {
-                *d += 2.0 * xv * t;
+            // dx += 2x·(γᵀg): (C × C)ᵀ · (C × len).
+            matmul(c, len, c, &mut gt[..c * len], false, gamma, 1, c, &g[..c * len], len, 1);
+            for ch in 0..c {
+                let r = ch * p + p0..ch * p + p0 + len;
+                let ts = &gt[ch * len..][..len];
+                for ((d, &xv), &t) in dxb[r.clone()].iter_mut().zip(&xb[r]).zip(ts) {
+                    *d += 2.0 * xv * t;
+                }
             }
-        });
-        // dγ += g · (x²)ᵀ: (C × P) · (P × C).
-        x2.iter_mut().zip(xb).for_each(|(o, v)| *o = v * v);
-        matmul(c, c, p, &mut out.dgamma, i > 0, &g, p, 1, &x2, 1, p);
-        for (ch, db) in out.dbeta.iter_mut().enumerate() {
-            *db += g[ch * p..(ch + 1) * p].iter().map(|&v| v as f64).sum::<f64>();
+            // dγ += g · (x²)ᵀ: (C × len) · (len × C); dβ += Σ g.
+            matmul(c, c, len, &mut out.dgamma, !first, &g[..c * len], len, 1, &x2[..c * len], 1, len);
+            first = false;
+            for (ch, db) in out.dbeta.iter_mut().enumerate() {
+                *db += g[ch * len..(ch + 1) * len].iter().map(|&v| v as f64).sum::<f64>();
+            }
         }
     }
     out
@@ -155,15 +192,13 @@ impl CustomOp3 for FusedGdn {
         let p = h * w;
         let mut y = vec![0f32; x.len()];
         let inverse = self.inverse;
-        let image = |bi: usize, yb: &mut [f32], n: &mut Vec<f32>| {
-            forward_image(&x[bi * c * p..(bi + 1) * c * p], beta, gamma, c, p, inverse, n, yb)
+        let image = |(bi, yb): (usize, &mut [f32])| {
+            forward_image(&x[bi * c * p..(bi + 1) * c * p], beta, gamma, c, p, inverse, yb)
         };
-        let scratch = || vec![0f32; c * p];
         if batch_parallel(b) {
-            y.par_chunks_mut(c * p).enumerate().for_each_init(scratch, |n, (bi, yb)| image(bi, yb, n));
+            y.par_chunks_mut(c * p).enumerate().for_each(image);
         } else {
-            let mut n = scratch();
-            y.chunks_mut(c * p).enumerate().for_each(|(bi, yb)| image(bi, yb, &mut n));
+            y.chunks_mut(c * p).enumerate().for_each(image);
         }
         Ok((CpuStorage::F32(y), l1.shape().clone()))
     }

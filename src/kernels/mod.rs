@@ -6,6 +6,7 @@ pub mod fixed;
 pub mod fused_conv;
 pub mod fused_gdn;
 mod hyper_fixed;
+pub mod pixel_shuffle;
 
 pub use fixed::{FixedConv, SimdMode};
 pub use hyper_fixed::{HyperSynthesisFixed, PriorParameters};

@@ -55,9 +55,7 @@ impl Module for Conv {
 /// Rearranges `(B, 4C, H, W)` into `(B, C, 2H, 2W)`: channel `4c + 2dy + dx` lands at
 /// `(c, 2h + dy, 2w + dx)`.
 pub fn depth_to_space(x: &Tensor) -> Result<Tensor> {
-    let (b, c4, h, w) = x.dims4()?;
-    let c = c4 / 4;
-    x.reshape((b, c, 2, 2, h, w))?.permute((0, 1, 4, 2, 5, 3))?.reshape((b, c, 2 * h, 2 * w))
+    crate::kernels::pixel_shuffle::depth_to_space(x)
 }
 
 /// Sub-pixel upsampling by 2: a stride-1 convolution to `4·out` channels, then depth-to-space.
