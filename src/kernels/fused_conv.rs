@@ -239,15 +239,13 @@ fn patch_rows_adjoint(rows: &[f32], g: Im2Col, h: usize, w: usize, c: usize, out
 /// Weights `(O, C, k, k)` as the `(k²C × O)` matrix matching the patch-row order.
 fn weight_matrix(w: &[f32], o: usize, c: usize, k: usize) -> Vec<f32> {
     let mut m = vec![0f32; w.len()];
-    for oo in 0..o {
-        for cc in 0..c {
-            for ky in 0..k {
-                for kx in 0..k {
-                    m[((ky * k + kx) * c + cc) * o + oo] = w[((oo * c + cc) * k + ky) * k + kx];
-                }
-            }
+    // Row (ky, kx, cc) of the matrix gathers one tap of every output channel.
+    for_each_chunk(&mut m, o, |r, row| {
+        let (tap, cc) = (r / c, r % c);
+        for (oo, v) in row.iter_mut().enumerate() {
+            *v = w[(oo * c + cc) * k * k + tap];
         }
-    }
+    });
     m
 }
 
@@ -283,7 +281,8 @@ impl CustomOp3 for FusedConv {
         let (l, kk) = (ho * wo, k * k * c);
         let wm = weight_matrix(wt, o, c, k);
         // Start from the bias and accumulate the product onto it.
-        let mut y: Vec<f32> = (0..b * o).flat_map(|i| std::iter::repeat_n(bias[i % o], l)).collect();
+        let mut y = vec![0f32; b * o * l];
+        for_each_chunk(&mut y, l, |i, plane| plane.fill(bias[i % o]));
         let rows_per_tile = tile_rows(wo, kk).min(ho);
         let tiles = ho.div_ceil(rows_per_tile);
         let scratch = || vec![0f32; rows_per_tile * wo * kk];

@@ -6,6 +6,8 @@ use std::collections::HashMap;
 
 use candle_core::{Device, Tensor, Var, backprop::GradStore};
 
+use rayon::prelude::*;
+
 use crate::error::Result;
 
 /// Adam hyper-parameters.
@@ -67,17 +69,29 @@ impl Adam {
         let (b1, b2, gs) = (c.beta1 as f32, c.beta2 as f32, grad_scale as f32);
         let step = (lr / bc1) as f32;
         let inv_bc2 = (1.0 / bc2) as f32;
-        for (i, (_, var)) in self.vars.iter().enumerate() {
-            let Some(g) = &grads[i] else { continue };
-            let mut p = values(var.as_tensor())?;
-            let (m, v) = (&mut self.m[i], &mut self.v[i]);
-            for j in 0..p.len() {
-                let gj = g[j] * gs;
-                m[j] = b1 * m[j] + (1.0 - b1) * gj;
-                v[j] = b2 * v[j] + (1.0 - b2) * gj * gj;
-                p[j] -= step * m[j] / ((v[j] * inv_bc2).sqrt() + c.eps as f32);
+        let eps = c.eps as f32;
+        // Variables are independent: update them in parallel, then hand the values to candle.
+        let updated: Vec<Option<Vec<f32>>> = self
+            .vars
+            .par_iter()
+            .zip(self.m.par_iter_mut().zip(self.v.par_iter_mut()))
+            .zip(grads.par_iter())
+            .map(|(((_, var), (m, v)), g)| -> Result<Option<Vec<f32>>> {
+                let Some(g) = g else { return Ok(None) };
+                let mut p = values(var.as_tensor())?;
+                for j in 0..p.len() {
+                    let gj = g[j] * gs;
+                    m[j] = b1 * m[j] + (1.0 - b1) * gj;
+                    v[j] = b2 * v[j] + (1.0 - b2) * gj * gj;
+                    p[j] -= step * m[j] / ((v[j] * inv_bc2).sqrt() + eps);
+                }
+                Ok(Some(p))
+            })
+            .collect::<Result<_>>()?;
+        for ((_, var), p) in self.vars.iter().zip(updated) {
+            if let Some(p) = p {
+                var.set(&Tensor::from_vec(p, var.dims(), &Device::Cpu)?)?;
             }
-            var.set(&Tensor::from_vec(p, var.dims(), &Device::Cpu)?)?;
         }
         Ok(())
     }
