@@ -13,6 +13,13 @@ use clap::Parser;
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 fn main() -> ExitCode {
+    // Like other Unix tools, end quietly when the reader of our output goes away
+    // (`kiln inspect default | head`) instead of panicking on the failed write.
+    #[cfg(unix)]
+    // SAFETY: restoring the default disposition of SIGPIPE before any thread exists.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
     let args = cli::Cli::parse();
     if std::env::var("KILN_CONV").is_ok_and(|v| v == "candle") {
         kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::Candle);

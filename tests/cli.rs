@@ -146,3 +146,18 @@ fn bad_inputs_exit_1_with_a_one_line_error_and_no_partial_file() {
         ],
     );
 }
+
+#[test]
+fn a_closed_output_pipe_ends_quietly_without_a_panic() {
+    let mut child = Command::new(env!("CARGO_BIN_EXE_kiln"))
+        .args(["inspect", "default"])
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    // The reader goes away before kiln writes (it first loads the model), as with `| head -0`.
+    drop(child.stdout.take());
+    let out = child.wait_with_output().unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(!err.contains("panicked"), "{err}");
+}
