@@ -38,6 +38,15 @@ fn matmul(
 /// (the decoder's widest layer would otherwise allocate and page-fault three 25 MB buffers).
 const TILE: usize = 1024;
 
+/// `γ` with subnormal entries set to zero. Trained GDN layers have thousands of off-diagonal
+/// `γ = raw²` that underflow into the subnormal range, and arithmetic on subnormals runs many
+/// times slower on x86 (measured: the trained default decoded a 768×512 image in 224 ms, 164 ms
+/// with the CPU flushing subnormals). Their contribution is below 1e-38 of a normal entry's.
+/// Only this fast path flushes; the fixed-order path has no GDN.
+fn flush_subnormal(gamma: &[f32]) -> Vec<f32> {
+    gamma.iter().map(|&g| if g.is_subnormal() { 0.0 } else { g }).collect()
+}
+
 /// Scratch for one tile: `x²` and `n`, each `C × TILE`.
 fn tile_scratch(c: usize) -> (Vec<f32>, Vec<f32>) {
     (vec![0f32; c * TILE], vec![0f32; c * TILE])
@@ -190,6 +199,7 @@ impl CustomOp3 for FusedGdn {
             bail!("fused GDN: parameters do not match {c} channels");
         }
         let p = h * w;
+        let gamma = &flush_subnormal(gamma)[..];
         let mut y = vec![0f32; x.len()];
         let inverse = self.inverse;
         let image = |(bi, yb): (usize, &mut [f32])| {
@@ -215,7 +225,7 @@ impl CustomOp3 for FusedGdn {
         let op = FusedGdnGrad {
             inverse: self.inverse,
             beta: beta.to_vec1::<f32>()?,
-            gamma: gamma.flatten_all()?.to_vec1::<f32>()?,
+            gamma: flush_subnormal(&gamma.flatten_all()?.to_vec1::<f32>()?),
         };
         // One buffer [dx | dβ | dγ], split by views.
         let all = x.contiguous()?.apply_op2_no_bwd(&grad.contiguous()?, &op)?;
