@@ -61,6 +61,18 @@ impl SharedDst {
     pub(crate) fn new(dst: &mut [f32]) -> Self {
         SharedDst { ptr: dst.as_mut_ptr(), len: dst.len() }
     }
+
+    /// Elements `offset..offset + len` (bounds checked).
+    ///
+    /// # Safety
+    /// No other thread may access those elements while the slice lives, and the buffer must
+    /// outlive it.
+    #[allow(clippy::mut_from_ref)]
+    pub(crate) unsafe fn slice(&self, offset: usize, len: usize) -> &mut [f32] {
+        assert!(offset + len <= self.len, "shared destination: {offset}+{len} beyond {}", self.len);
+        // SAFETY: in bounds (checked); exclusive by the caller's contract.
+        unsafe { std::slice::from_raw_parts_mut(self.ptr.add(offset), len) }
+    }
 }
 
 /// [`matmul`] into `dst` starting at element `offset`.
@@ -249,6 +261,72 @@ fn weight_matrix(w: &[f32], o: usize, c: usize, k: usize) -> Vec<f32> {
     m
 }
 
+/// Stride-1 forward without patch rows ("implicit GEMM"): on a zero-padded HWC copy of the
+/// image, the input under tap `(ky, kx)` for a run of output positions is itself a matrix with
+/// row stride `C`, if the positions are counted along the padded width (the `2·pad` extra
+/// positions per row are computed and dropped). So `Y = Σ_taps X_tap · W_tap`: `k²` products of
+/// depth `C` per tile of output rows, reading the image instead of writing `k²` copies of it.
+fn forward_stride1(x: &[f32], wm: &[f32], bias: &[f32], [b, c, h, w]: [usize; 4], o: usize, g: Im2Col) -> Vec<f32> {
+    let (k, pad) = (g.k, g.pad);
+    let (ho, wo) = g.output_size(h, w);
+    let (hp, wp) = (h + 2 * pad, w + 2 * pad);
+    let l = ho * wo;
+    // Tiles of output rows whose input run and result (m × (C + O) floats) fill about 1 MiB.
+    let rows_per_tile = ((1 << 20) / ((c + o) * 4 * wp)).clamp(1, ho.max(1));
+    let tiles = ho.div_ceil(rows_per_tile);
+    let max_m = (rows_per_tile - 1) * wp + wo;
+    let mut y = vec![0f32; b * o * l];
+    let dst = SharedDst::new(&mut y);
+    let tile = |padded: &[f32], bi: usize, t: usize, buf: &mut Vec<f32>| {
+        let oys = t * rows_per_tile..((t + 1) * rows_per_tile).min(ho);
+        let m = (oys.len() - 1) * wp + wo;
+        let base = oys.start * wp;
+        // Yᵀ (O × m) into buf: element (position i, channel j) at j·m + i.
+        for ky in 0..k {
+            for kx in 0..k {
+                let tap = ky * k + kx;
+                let lhs = View { data: &padded[(base + ky * wp + kx) * c..], rs: c, cs: 1 };
+                let rhs = View { data: &wm[tap * c * o..(tap + 1) * c * o], rs: o, cs: 1 };
+                matmul(m, o, c, &mut buf[..o * m], 1, m, tap > 0, lhs, rhs);
+            }
+        }
+        for (oc, &bv) in bias.iter().enumerate() {
+            for oy in oys.clone() {
+                // SAFETY: this tile alone writes output rows `oys` of image `bi`.
+                let out = unsafe { dst.slice(bi * o * l + oc * l + oy * wo, wo) };
+                let src = &buf[oc * m + (oy - oys.start) * wp..][..wo];
+                out.iter_mut().zip(src).for_each(|(d, v)| *d = v + bv);
+            }
+        }
+    };
+    let image = |bi: usize, padded: &mut Vec<f32>, buf: &mut Vec<f32>| {
+        padded.fill(0.0);
+        let img = &x[bi * c * h * w..(bi + 1) * c * h * w];
+        for_each_chunk(&mut padded[pad * wp * c..(pad + h) * wp * c], wp * c, |yy, row| {
+            for ch in 0..c {
+                let src = &img[(ch * h + yy) * w..][..w];
+                for (xx, &v) in src.iter().enumerate() {
+                    row[(xx + pad) * c + ch] = v;
+                }
+            }
+        });
+        if nested() || tiles == 1 {
+            (0..tiles).for_each(|t| tile(padded, bi, t, buf));
+        } else {
+            let padded = &*padded;
+            (0..tiles).into_par_iter().for_each_init(|| vec![0f32; o * max_m], |buf, t| tile(padded, bi, t, buf));
+        }
+    };
+    let scratch = || (vec![0f32; hp * wp * c], vec![0f32; o * max_m]);
+    if batch_parallel(b) {
+        (0..b).into_par_iter().for_each_init(scratch, |(padded, buf), bi| image(bi, padded, buf));
+    } else {
+        let (mut padded, mut buf) = scratch();
+        (0..b).for_each(|bi| image(bi, &mut padded, &mut buf));
+    }
+    y
+}
+
 /// The fused convolution: `x (B, C, H, W) ⊛ weight (O, C, k, k) + bias (O)`.
 #[derive(Debug, Clone, Copy)]
 pub struct FusedConv(pub Im2Col);
@@ -280,6 +358,10 @@ impl CustomOp3 for FusedConv {
         let (ho, wo) = g.output_size(h, w);
         let (l, kk) = (ho * wo, k * k * c);
         let wm = weight_matrix(wt, o, c, k);
+        if g.stride == 1 {
+            let y = forward_stride1(x, &wm, bias, [b, c, h, w], o, g);
+            return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
+        }
         // Start from the bias and accumulate the product onto it.
         let mut y = vec![0f32; b * o * l];
         for_each_chunk(&mut y, l, |i, plane| plane.fill(bias[i % o]));

@@ -281,3 +281,15 @@ impl CustomOp2 for FusedGdnGrad {
         Ok((CpuStorage::F32(dx), Shape::from(n)))
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::flush_subnormal;
+
+    #[test]
+    fn only_subnormal_entries_are_flushed() {
+        let tiny = f32::MIN_POSITIVE;
+        let v = [1.0, tiny, tiny / 2.0, -tiny / 4.0, 0.0, 1e-30];
+        assert_eq!(flush_subnormal(&v), vec![1.0, tiny, 0.0, 0.0, 0.0, 1e-30]);
+    }
+}
