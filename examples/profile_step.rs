@@ -23,6 +23,15 @@ fn time<T>(label: &str, reps: usize, mut f: impl FnMut() -> T) -> f64 {
 
 fn main() -> candle_core::Result<()> {
     let dev = Device::Cpu;
+    if std::env::var("KILN_PROFILE_ONLY").as_deref() == Ok("fixed") {
+        // The decoder's fixed-order hyper-synthesis for a 768×512 image (ẑ is 12×8).
+        let model = Model::new(ModelConfig::default(), 1).unwrap();
+        let hs = model.hyper_synthesis_fixed().unwrap();
+        let z: Vec<f32> = (0..64 * 12 * 8).map(|i| ((i * 7919) % 13) as f32 - 6.0).collect();
+        let mode = kiln::kernels::SimdMode::from_env();
+        time("fixed h_s 768x512 (ẑ 12x8)", 10, || hs.forward(&z, 8, 12, mode));
+        return Ok(());
+    }
     if std::env::var("KILN_PROFILE_ONLY").as_deref() == Ok("gdn") {
         let vm = candle_nn::VarMap::new();
         let vb = candle_nn::VarBuilder::from_varmap(&vm, candle_core::DType::F32, &dev);

@@ -79,3 +79,20 @@ fn fixed_hyper_synthesis_agrees_with_the_training_network() {
         assert!((a - b).abs() < 1e-4 * (1.0 + b.abs()), "{a} vs {b}");
     }
 }
+
+#[test]
+fn register_blocked_path_gives_the_scalar_bits() {
+    // Wide enough for interior pixel blocks, channel counts off the block size.
+    let mut rng = ChaCha8Rng::seed_from_u64(3);
+    for (cin, cout, k, h, w) in [(24, 40, 3, 9, 13), (7, 16, 3, 5, 11), (5, 33, 5, 8, 14)] {
+        let wt: Vec<f32> = (0..cout * cin * k * k).map(|_| rng.gen_range(-1.0..1.0)).collect();
+        let b: Vec<f32> = (0..cout).map(|_| rng.gen_range(-1.0..1.0)).collect();
+        let x: Vec<f32> = (0..h * w * cin).map(|_| rng.gen_range(-3.0..3.0)).collect();
+        let conv = FixedConv::new(&wt, &b, cout, cin, k);
+        let scalar = conv.forward(&x, h, w, SimdMode::Scalar);
+        for threads in [1, 2] {
+            let fast = in_pool(threads, || conv.forward(&x, h, w, SimdMode::Vectorized));
+            assert_eq!(bits(&fast), bits(&scalar), "{cin}->{cout} k{k} {h}x{w}, {threads} threads");
+        }
+    }
+}

@@ -29,6 +29,11 @@ impl SimdMode {
     }
 }
 
+/// Pixels per register block of the vectorized path.
+const PIXEL_BLOCK: usize = 4;
+/// Output channels per register block of the vectorized path.
+const CHANNEL_BLOCK: usize = 16;
+
 /// A stride-1, zero-padded square convolution with fixed summation order.
 #[derive(Debug, Clone)]
 pub struct FixedConv {
@@ -76,16 +81,64 @@ impl FixedConv {
         if row_len == 0 {
             return out;
         }
+        let r = self.k / 2;
         out.par_chunks_mut(row_len).enumerate().for_each(|(oy, row)| {
-            for ox in 0..w {
+            let mut ox = 0;
+            while ox < w {
+                // Blocks of pixels whose taps all fall inside the image.
+                let interior = mode == SimdMode::Vectorized && oy >= r && oy + r < h && ox >= r;
+                if interior && ox + PIXEL_BLOCK + r <= w {
+                    self.block(x, h, w, oy, ox, &mut row[ox * self.cout..(ox + PIXEL_BLOCK) * self.cout]);
+                    ox += PIXEL_BLOCK;
+                    continue;
+                }
                 let acc = &mut row[ox * self.cout..(ox + 1) * self.cout];
                 match mode {
-                    SimdMode::Vectorized => self.pixel_vectorized(x, h, w, oy, ox, acc),
+                    SimdMode::Vectorized => self.pixel_vectorized(x, h, w, oy, ox, 0..self.cout, acc),
                     SimdMode::Scalar => self.pixel_scalar(x, h, w, oy, ox, acc),
                 }
+                ox += 1;
             }
         });
         out
+    }
+
+    /// `PIXEL_BLOCK` interior pixels from `ox0` on row `oy`, output channels in chunks of
+    /// `CHANNEL_BLOCK` held in registers (the remainder per pixel). Each element's sum runs in
+    /// the same order as in [`FixedConv::pixel_scalar`]: bias, taps row by row, input channels.
+    fn block(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
+        let (cin, cout, k, r) = (self.cin, self.cout, self.k, self.k / 2);
+        let full = cout / CHANNEL_BLOCK * CHANNEL_BLOCK;
+        for c0 in (0..full).step_by(CHANNEL_BLOCK) {
+            let mut acc = [[0f32; CHANNEL_BLOCK]; PIXEL_BLOCK];
+            for a in acc.iter_mut() {
+                a.copy_from_slice(&self.b[c0..c0 + CHANNEL_BLOCK]);
+            }
+            for ky in 0..k {
+                for kx in 0..k {
+                    let tap = ky * k + kx;
+                    let pos0 = (oy + ky - r) * w + ox0 + kx - r;
+                    for ci in 0..cin {
+                        let wrow = &self.w[(tap * cin + ci) * cout + c0..][..CHANNEL_BLOCK];
+                        for (j, a) in acc.iter_mut().enumerate() {
+                            let xv = x[(pos0 + j) * cin + ci];
+                            for (q, &wv) in wrow.iter().enumerate() {
+                                a[q] += xv * wv;
+                            }
+                        }
+                    }
+                }
+            }
+            for (j, a) in acc.iter().enumerate() {
+                out[j * cout + c0..j * cout + c0 + CHANNEL_BLOCK].copy_from_slice(a);
+            }
+        }
+        if full < cout {
+            for j in 0..PIXEL_BLOCK {
+                let acc = &mut out[j * cout + full..(j + 1) * cout];
+                self.pixel_vectorized(x, h, w, oy, ox0 + j, full..cout, acc);
+            }
+        }
     }
 
     fn taps(&self, h: usize, w: usize, oy: usize, ox: usize) -> impl Iterator<Item = (usize, usize)> + '_ {
@@ -97,12 +150,24 @@ impl FixedConv {
         })
     }
 
-    fn pixel_vectorized(&self, x: &[f32], h: usize, w: usize, oy: usize, ox: usize, acc: &mut [f32]) {
-        acc.copy_from_slice(&self.b);
+    /// One pixel, output channels `chans` into `acc`.
+    #[allow(clippy::too_many_arguments)]
+    fn pixel_vectorized(
+        &self,
+        x: &[f32],
+        h: usize,
+        w: usize,
+        oy: usize,
+        ox: usize,
+        chans: std::ops::Range<usize>,
+        acc: &mut [f32],
+    ) {
+        acc.copy_from_slice(&self.b[chans.clone()]);
         for (tap, pos) in self.taps(h, w, oy, ox) {
             let xs = &x[pos * self.cin..(pos + 1) * self.cin];
             for (ci, &xv) in xs.iter().enumerate() {
-                let wrow = &self.w[(tap * self.cin + ci) * self.cout..(tap * self.cin + ci + 1) * self.cout];
+                let wrow = &self.w
+                    [(tap * self.cin + ci) * self.cout + chans.start..(tap * self.cin + ci) * self.cout + chans.end];
                 for (a, &wv) in acc.iter_mut().zip(wrow) {
                     *a += xv * wv;
                 }
