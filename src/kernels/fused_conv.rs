@@ -51,8 +51,8 @@ pub(crate) struct SharedDst {
     len: usize,
 }
 
-// SAFETY: a `SharedDst` is only written through `matmul_shared`, whose contract makes callers
-// keep the element sets of concurrent writers disjoint.
+// SAFETY: a `SharedDst` is only written through `matmul_shared` and `slice`, whose contracts
+// make callers keep the element sets of concurrent writers disjoint.
 unsafe impl Send for SharedDst {}
 unsafe impl Sync for SharedDst {}
 
@@ -153,6 +153,13 @@ pub(crate) fn nested() -> bool {
 pub(crate) fn batch_parallel(b: usize) -> bool {
     let threads = rayon::current_num_threads();
     threads > 1 && b >= threads && !nested()
+}
+
+/// Images per group when a batch's parameter gradients are summed in fixed groups, one group
+/// per thread (all `b` in one group unless [`batch_parallel`]). Each group sums its images in
+/// order and the groups are added in order, so results depend on the thread count only.
+pub(crate) fn images_per_group(b: usize) -> usize {
+    if batch_parallel(b) { b.div_ceil(rayon::current_num_threads().min(b)) } else { b.max(1) }
 }
 
 /// `f(i, chunk)` over the `n`-sized chunks of `out`: in parallel, unless [`nested`].
@@ -477,8 +484,7 @@ impl CustomOp2 for FusedConvGradWeight {
         let g = self.geometry;
         let k = g.k;
         let (l, kk) = (ho * wo, k * k * c);
-        // Images in fixed groups, one per thread, each summed into its own partial dW; the
-        // partials are added in group order, so the result depends on the thread count only.
+        // Images in fixed groups (see `images_per_group`), each summed into its own partial dW.
         let part = |images: std::ops::Range<usize>| {
             let mut dwm = vec![0f32; kk * o];
             let mut hwc = vec![0f32; h * w * c];
@@ -493,11 +499,10 @@ impl CustomOp2 for FusedConvGradWeight {
             }
             dwm
         };
-        let dwm = if batch_parallel(b) {
-            let groups = rayon::current_num_threads().min(b);
-            let per = b.div_ceil(groups);
+        let per = images_per_group(b);
+        let dwm = if per < b {
             let partials: Vec<Vec<f32>> =
-                (0..groups).into_par_iter().map(|p| part(p * per..((p + 1) * per).min(b))).collect();
+                (0..b).step_by(per).collect::<Vec<_>>().into_par_iter().map(|s| part(s..(s + per).min(b))).collect();
             let mut total = partials[0].clone();
             for p in &partials[1..] {
                 total.iter_mut().zip(p).for_each(|(t, v)| *t += v);

@@ -11,7 +11,7 @@ use candle_core::{CpuStorage, CustomOp2, CustomOp3, Layout, Result, Shape, Tenso
 use rayon::prelude::*;
 
 use super::conv::contiguous_f32;
-use super::fused_conv::{View, batch_parallel, nested};
+use super::fused_conv::{View, batch_parallel, images_per_group, nested};
 
 /// `dst (m × n, row-major) [+]= lhs (m × k, strides) · rhs (k × n, strides)`, on gemm.
 #[allow(clippy::too_many_arguments)]
@@ -258,14 +258,14 @@ impl CustomOp2 for FusedGdnGrad {
         let p = h * w;
         let (be, ga, inverse) = (&self.beta, &self.gamma, self.inverse);
         let mut dx = vec![0f32; xs.len() + c + c * c];
-        let groups = if batch_parallel(b) { rayon::current_num_threads().min(b) } else { 1 };
-        let per = b.div_ceil(groups) * c * p;
+        let images = images_per_group(b);
+        let per = images * c * p;
         let run = |(i, dxg): (usize, &mut [f32])| {
             let r = i * per..(i * per + dxg.len());
             backward_images(&xs[r.clone()], &dys[r], be, ga, c, p, inverse, dxg)
         };
         let (dxs, params) = dx.split_at_mut(xs.len());
-        let parts: Vec<GdnParamGrads> = if groups > 1 {
+        let parts: Vec<GdnParamGrads> = if images < b {
             dxs.par_chunks_mut(per).enumerate().map(run).collect()
         } else {
             dxs.chunks_mut(per).enumerate().map(run).collect()
