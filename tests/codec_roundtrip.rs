@@ -3,6 +3,7 @@
 mod common;
 
 use common::{synthetic_picture, tiny_codec};
+use kiln::codec::LatentLayout;
 
 #[test]
 fn round_trip_keeps_dimensions_for_odd_sizes_and_grey() {
@@ -14,6 +15,33 @@ fn round_trip_keeps_dimensions_for_odd_sizes_and_grey() {
         assert_eq!((dec.width, dec.height, dec.channels), (w, h, c));
         assert_eq!(dec.data.len(), pic.data.len());
     }
+}
+
+#[test]
+fn files_with_the_earlier_padded_latent_still_decode() {
+    let codec = tiny_codec(6);
+    let pic = synthetic_picture(90, 70, 3, 2);
+    let old = codec.encode_with_layout(&pic, 50.0, LatentLayout::Padded64).unwrap();
+    let new = codec.encode(&pic, 50.0).unwrap();
+    let header = kiln::container::read_header(&old.bytes).unwrap();
+    assert_eq!(header.tiles[0].latent, [12, 8, 8]);
+    let (a, b) = (codec.decode(&old.bytes).unwrap(), codec.decode(&new.bytes).unwrap());
+    assert_eq!((a.width, a.height), (90, 70));
+    assert_eq!(a.data.len(), b.data.len());
+    // The cropped layout codes 5×6 latent positions instead of 8×8.
+    assert!(new.ideal_bits < old.ideal_bits, "{} vs {}", new.ideal_bits, old.ideal_bits);
+}
+
+#[test]
+fn a_latent_shape_that_fits_neither_layout_is_refused() {
+    let codec = tiny_codec(6);
+    let pic = synthetic_picture(90, 70, 3, 2);
+    let bytes = codec.encode(&pic, 50.0).unwrap().bytes;
+    let mut header = kiln::container::read_header(&bytes).unwrap();
+    let (_, streams) = kiln::container::read(&bytes).unwrap();
+    header.tiles[0].latent = [12, 6, 6];
+    let forged = kiln::container::write(&header, &streams).unwrap();
+    assert!(codec.decode(&forged).is_err());
 }
 
 #[test]

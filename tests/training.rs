@@ -39,6 +39,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         lambdas: None,
         distortion: kiln::train::Distortion::Mse,
         stop_after: None,
+        balance: 0.0,
         progress: false,
     }
 }

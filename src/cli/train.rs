@@ -67,6 +67,10 @@ pub struct TrainArgs {
     /// qualities); quality 1 maps to the first, 100 to the last.
     #[arg(long, value_delimiter = ',')]
     lambdas: Option<Vec<f64>>,
+    /// Weigh each crop's loss by (λ_mid/λ)^BALANCE (λ_mid: geometric mean of the anchors), so
+    /// that low qualities get a fair share of the gradient; 0 weighs all crops alike.
+    #[arg(long, default_value_t = 0.0)]
+    balance: f64,
     /// Print plain log lines instead of a progress bar.
     #[arg(long)]
     log: bool,
@@ -108,6 +112,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         distortion: a.distortion,
         stop_after: a.stop_after,
         lambdas: a.lambdas,
+        balance: a.balance,
         progress: !a.log,
     };
     kiln::train::train(&opts)?;

@@ -22,6 +22,11 @@
 //! | L | … | per tile: hyper stream, then latent stream (ANS words, `u32` LE) |
 //! | end−4 | 4 | CRC-32 of every byte before it |
 //!
+//! A tile's latent shape is `(M, ⌈th/16⌉, ⌈tw/16⌉)` and its hyper-latent shape
+//! `(Nz, ⌈⌈th/16⌉/4⌉, ⌈⌈tw/16⌉/4⌉)` for tile size `tw × th`; files written before the latent was
+//! cropped to the tile carry `(M, 4·hz, 4·wz)` instead, and decoders accept both (the codec
+//! checks the shapes; this module only reads them).
+//!
 //! Tiles are decoded independently, so a later version can decode a region without the rest
 //! and bound memory for very large images; version-1 writers use one tile unless the image is
 //! larger than [`SINGLE_TILE_MAX`] on a side. Other channel counts and bit depths fit the same

@@ -83,8 +83,25 @@ pub struct TrainOptions {
     /// `resume` the gain tables are re-targeted to them ([`retarget_rows`]), e.g. to extend a
     /// model's quality range upwards. `None` keeps the model's own.
     pub lambdas: Option<Vec<f64>>,
+    /// Exponent `α` of the per-crop loss weight `(λ_mid / λ)^α` (`λ_mid`: geometric mean of the
+    /// anchors; 0 weighs every crop alike). A crop's loss grows roughly like `√λ`, so with `α = 0`
+    /// the high-λ crops dominate every batch's gradient and the low qualities are undertrained;
+    /// `α = 0.5` gives every trade-off point a similar share. Each crop still minimises its own
+    /// `bpp + λ·D`: the weight only changes how the shared weights divide their capacity.
+    pub balance: f64,
     /// Show a progress bar.
     pub progress: bool,
+}
+
+/// Per-crop loss weight `(λ_mid / λ)^α` for a run with `anchors`, `λ_mid` their geometric mean.
+///
+/// ```
+/// let w = kiln::train::balance_weight(&[0.01, 0.04], 0.02, 0.5);
+/// assert!((w - 1.0).abs() < 1e-12);
+/// ```
+pub fn balance_weight(anchors: &[f64], lambda: f64, alpha: f64) -> f64 {
+    let mid = (anchors.iter().map(|l| l.ln()).sum::<f64>() / anchors.len().max(1) as f64).exp();
+    (mid / lambda).powf(alpha)
 }
 
 /// Learning rate at `step`: `lr` until `decay_from · steps`, then `lr / 10`.
@@ -250,14 +267,16 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
             break;
         }
         let x = data.sample(o.batch, o.patch, &mut run.rng)?;
-        let (mut idx, mut wts, mut lam) = (vec![], vec![], vec![]);
+        let (mut idx, mut wts, mut lam, mut bal) = (vec![], vec![], vec![], vec![]);
         for _ in 0..o.batch {
             let t: f64 = run.rng.gen_range(0.0..(config.anchors() - 1) as f64);
             let i = (t.floor() as usize).min(config.anchors() - 2);
             let l = t - i as f64;
             idx.push(i as u32);
             wts.push(l as f32);
-            lam.push((lambdas[i].ln() * (1.0 - l) + lambdas[i + 1].ln() * l).exp() as f32);
+            let lambda = (lambdas[i].ln() * (1.0 - l) + lambdas[i + 1].ln() * l).exp();
+            lam.push(lambda as f32);
+            bal.push(balance_weight(&lambdas, lambda, o.balance) as f32);
         }
         let p = o.patch;
         let ny = uniform_noise(&mut run.rng, &[o.batch, config.m, p / 16, p / 16])?;
@@ -265,11 +284,15 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         let idx = Tensor::new(idx, &Device::Cpu)?;
         let wts = Tensor::new(wts, &Device::Cpu)?;
         let lam = Tensor::new(lam, &Device::Cpu)?;
+        let bal = Tensor::new(bal, &Device::Cpu)?;
         let out = run.model.forward_train(&x, &idx, &wts, &ny, &nz)?;
         let pixels = (p * p) as f64;
         let bpp = ((&out.bits_y + &out.bits_z)? / pixels)?;
         let dist = o.distortion.per_sample(&out.x_hat, &x)?;
-        let loss = (&bpp + ((&dist * &lam)? * o.distortion.lambda_scale())?)?.mean(0)?;
+        let per_crop = (&bpp + ((&dist * &lam)? * o.distortion.lambda_scale())?)?;
+        let loss = (&per_crop * &bal)?.mean(0)?;
+        // Logged: the unweighted objective, comparable across `balance` settings.
+        let objective = per_crop.mean(0)?.detach().to_scalar::<f32>()?;
         let mse = ((&out.x_hat - &x)? * 255.0)?.sqr()?.mean_all()?.detach();
         let loss_v = loss.to_scalar::<f32>()?;
         if !loss_v.is_finite() {
@@ -285,12 +308,12 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         let bpp_v = bpp.mean(0)?.to_scalar::<f32>()? as f64;
         let mse_v = mse.to_scalar::<f32>()? as f64;
         let psnr_v = 10.0 * (255.0f64.powi(2) / mse_v.max(1e-10)).log10();
-        let cur = (loss_v as f64, bpp_v, psnr_v);
+        let cur = (objective as f64, bpp_v, psnr_v);
         run.averages = Some(match run.averages {
             None => cur,
             Some(a) => (0.98 * a.0 + 0.02 * cur.0, 0.98 * a.1 + 0.02 * cur.1, 0.98 * a.2 + 0.02 * cur.2),
         });
-        losses.push(loss_v as f64);
+        losses.push(objective as f64);
         let a = run.averages.unwrap_or(cur);
         let rate = (run.step - first_step) as f64 / t0.elapsed().as_secs_f64().max(1e-9);
         bar.set_position(run.step);
