@@ -68,6 +68,7 @@ fn codec_benches(c: &mut Criterion) {
 }
 
 fn config() -> Criterion {
+    kiln::allocator::keep_freed_memory();
     Criterion::default()
         .warm_up_time(std::time::Duration::from_secs(1))
         .measurement_time(std::time::Duration::from_secs(3))

@@ -96,6 +96,7 @@ fn training_step(c: &mut Criterion) {
 }
 
 fn config() -> Criterion {
+    kiln::allocator::keep_freed_memory();
     Criterion::default()
         .warm_up_time(std::time::Duration::from_secs(1))
         .measurement_time(std::time::Duration::from_secs(3))

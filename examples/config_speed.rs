@@ -11,6 +11,7 @@ use kiln::model::TrainingSummary;
 use kiln::{Codec, Model, ModelConfig, ModelFile, Picture};
 
 fn main() -> anyhow::Result<()> {
+    kiln::allocator::keep_freed_memory();
     let (w, h) = (768u32, 512u32);
     // A smooth gradient with texture: any content codes; the transforms' cost does not depend on it.
     let data: Vec<u8> = (0..w * h)

@@ -22,6 +22,7 @@ fn time<T>(label: &str, reps: usize, mut f: impl FnMut() -> T) -> f64 {
 }
 
 fn main() -> candle_core::Result<()> {
+    kiln::allocator::keep_freed_memory();
     let dev = Device::Cpu;
     if std::env::var("KILN_PROFILE_ONLY").as_deref() == Ok("fixed") {
         // The decoder's fixed-order hyper-synthesis for a 768×512 image (ẑ is 12×8).

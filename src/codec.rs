@@ -124,6 +124,21 @@ pub fn tile_latent_sizes(w: usize, h: usize) -> ((usize, usize), (usize, usize))
     ((hy, wy), (hy.div_ceil(HYPER_STRIDE / LATENT_STRIDE), wy.div_ceil(HYPER_STRIDE / LATENT_STRIDE)))
 }
 
+/// The top-left `tw × th` of three `h × w` planes in `[0, 1]` as interleaved 8-bit RGB
+/// (`round(255·v)`, clamped), in one pass.
+fn planes_to_rgb8(planes: &[f32], h: usize, w: usize, tw: usize, th: usize) -> Vec<u8> {
+    let mut out = vec![0u8; tw * th * 3];
+    for (y, row) in out.chunks_mut(tw * 3).enumerate() {
+        for ch in 0..3 {
+            let src = &planes[(ch * h + y) * w..][..tw];
+            for (x, &v) in src.iter().enumerate() {
+                row[x * 3 + ch] = (v * 255.0).round().clamp(0.0, 255.0) as u8;
+            }
+        }
+    }
+    out
+}
+
 /// Edge-pads a latent `(1, M, hy, wy)` to `(1, M, 4·hz, 4·wz)` for the hyper-analysis.
 fn pad_latent(y: &Tensor, hz: usize, wz: usize) -> Result<Tensor> {
     let r = HYPER_STRIDE / LATENT_STRIDE;
@@ -349,9 +364,7 @@ impl Codec {
         }
         dec_y.finish()?;
         let y = Tensor::from_vec(y_hat, (1, cfg.m, hy, wy), &Device::Cpu)?;
-        let x = self.file.model.g_s.forward(&y)?; // (1, 3, 16hy, 16wy)
-        let x = (x.narrow(2, 0, th)?.narrow(3, 0, tw)? * 255.0)?.round()?.clamp(0.0, 255.0)?;
-        let x = x.squeeze(0)?.permute((1, 2, 0))?.flatten_all()?.to_vec1::<f32>()?;
-        Ok(x.into_iter().map(|v| v as u8).collect())
+        let x = self.file.model.g_s.forward(&y)?.flatten_all()?.to_vec1::<f32>()?; // (1, 3, 16hy, 16wy)
+        Ok(planes_to_rgb8(&x, 16 * hy, 16 * wy, tw, th))
     }
 }

@@ -5,6 +5,7 @@
 //! scale a hyper-latent predicts; the synthesis transform reconstructs the image. See
 //! `DEVELOPERS.md` for the data flow and [`container`] for the file format.
 
+pub mod allocator;
 pub mod archive;
 pub mod codec;
 pub mod container;

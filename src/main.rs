@@ -20,6 +20,7 @@ fn main() -> ExitCode {
     unsafe {
         libc::signal(libc::SIGPIPE, libc::SIG_DFL);
     }
+    kiln::allocator::keep_freed_memory();
     let args = cli::Cli::parse();
     if std::env::var("KILN_CONV").is_ok_and(|v| v == "candle") {
         kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::Candle);

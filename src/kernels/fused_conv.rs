@@ -13,6 +13,7 @@ use gemm::Parallelism;
 use rayon::prelude::*;
 
 use super::conv::{Im2Col, contiguous_f32};
+use super::narrow_conv::{Isa, forward_narrow};
 
 /// A strided matrix view over a slice: element `(i, j)` is at `i·rs + j·cs`.
 #[derive(Clone, Copy)]
@@ -364,6 +365,12 @@ impl CustomOp3 for FusedConv {
         let g = self.0;
         let (ho, wo) = g.output_size(h, w);
         let (l, kk) = (ho * wo, k * k * c);
+        if g.stride == 1 && g.pad == k / 2 {
+            let narrow = Isa::detect().and_then(|isa| forward_narrow(x, wt, bias, [b, c, h, w], o, k, isa));
+            if let Some(y) = narrow {
+                return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
+            }
+        }
         let wm = weight_matrix(wt, o, c, k);
         if g.stride == 1 {
             let y = forward_stride1(x, &wm, bias, [b, c, h, w], o, g);

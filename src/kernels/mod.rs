@@ -6,6 +6,7 @@ pub mod fixed;
 pub mod fused_conv;
 pub mod fused_gdn;
 mod hyper_fixed;
+mod narrow_conv;
 pub mod pixel_shuffle;
 
 pub use fixed::{FixedConv, SimdMode};
