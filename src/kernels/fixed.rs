@@ -106,7 +106,39 @@ impl FixedConv {
     /// `PIXEL_BLOCK` interior pixels from `ox0` on row `oy`, output channels in chunks of
     /// `CHANNEL_BLOCK` held in registers (the remainder per pixel). Each element's sum runs in
     /// the same order as in [`FixedConv::pixel_scalar`]: bias, taps row by row, input channels.
+    ///
+    /// The same code is compiled for AVX-512 and AVX2 and picked at run time: wider registers
+    /// hold more output channels, each lane still a plain sequence of separate `*` and `+` (Rust
+    /// never contracts them into fused multiply-adds), so the bits do not change.
     fn block(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if is_x86_feature_detected!("avx512f") {
+                // SAFETY: the CPU has AVX-512F (checked).
+                return unsafe { self.block_avx512(x, h, w, oy, ox0, out) };
+            }
+            if is_x86_feature_detected!("avx2") {
+                // SAFETY: the CPU has AVX2 (checked).
+                return unsafe { self.block_avx2(x, h, w, oy, ox0, out) };
+            }
+        }
+        self.block_portable(x, h, w, oy, ox0, out)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f")]
+    fn block_avx512(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
+        self.block_portable(x, h, w, oy, ox0, out)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    fn block_avx2(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
+        self.block_portable(x, h, w, oy, ox0, out)
+    }
+
+    #[inline(always)]
+    fn block_portable(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
         let (cin, cout, k, r) = (self.cin, self.cout, self.k, self.k / 2);
         let full = cout / CHANNEL_BLOCK * CHANNEL_BLOCK;
         for c0 in (0..full).step_by(CHANNEL_BLOCK) {
