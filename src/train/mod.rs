@@ -96,8 +96,11 @@ pub struct TrainOptions {
 /// Per-crop loss weight `(λ_mid / λ)^α` for a run with `anchors`, `λ_mid` their geometric mean.
 ///
 /// ```
-/// let w = kiln::train::balance_weight(&[0.01, 0.04], 0.02, 0.5);
-/// assert!((w - 1.0).abs() < 1e-12);
+/// use kiln::train::balance_weight;
+/// let anchors = [0.01, 0.04];
+/// assert!((balance_weight(&anchors, 0.02, 0.5) - 1.0).abs() < 1e-12); // the middle weighs 1
+/// assert!((balance_weight(&anchors, 0.01, 0.5) - 2f64.sqrt()).abs() < 1e-12);
+/// assert_eq!(balance_weight(&anchors, 0.04, 0.0), 1.0); // α = 0: unweighted
 /// ```
 pub fn balance_weight(anchors: &[f64], lambda: f64, alpha: f64) -> f64 {
     let mid = (anchors.iter().map(|l| l.ln()).sum::<f64>() / anchors.len().max(1) as f64).exp();
