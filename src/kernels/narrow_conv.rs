@@ -64,7 +64,8 @@ pub(crate) fn forward_narrow(
     k: usize,
     isa: Isa,
 ) -> Option<Vec<f32>> {
-    if !NARROW_OUTPUTS.contains(&o) || k.is_multiple_of(2) || weight.len() != o * c * k * k || bias.len() != o {
+    if !NARROW_OUTPUTS.contains(&o) || c == 0 || k.is_multiple_of(2) || weight.len() != o * c * k * k || bias.len() != o
+    {
         return None;
     }
     let pad = k / 2;
