@@ -1,6 +1,7 @@
 //! Decode speed of candidate configurations: FLOPs per pixel and measured decode time of a
 //! 768×512 image, each configuration with seeded random weights (speed does not depend on
-//! training). `cargo run --release --example config_speed`
+//! training). `cargo run --release --example config_speed [-- --model FILE]` (with `--model`:
+//! that model alone, one line).
 
 use std::time::Instant;
 
@@ -25,8 +26,17 @@ fn main() -> anyhow::Result<()> {
         "{:>18} {:>4} {:>4} {:>10} {:>10} {:>10} {:>9}",
         "weights", "N", "M", "enc kFLOP", "dec kFLOP", "decode ms", "Mpx/s"
     );
-    let mut candidates: Vec<(String, ModelFile)> = vec![("default (trained)".into(), ModelFile::load(None)?)];
-    for (n, m) in [(48, 64), (64, 96), (96, 128), (128, 192)] {
+    let args: Vec<String> = std::env::args().collect();
+    let mut candidates: Vec<(String, ModelFile)> = Vec::new();
+    if let [_, flag, path] = args.as_slice()
+        && flag == "--model"
+    {
+        let name = std::path::Path::new(path).file_stem().map_or("model".into(), |s| s.to_string_lossy().into_owned());
+        candidates.push((name, ModelFile::load(Some(std::path::Path::new(path)))?));
+    } else {
+        candidates.push(("default (trained)".into(), ModelFile::load(None)?));
+    }
+    for (n, m) in [(48, 64), (64, 96), (96, 128), (128, 192)].into_iter().filter(|_| args.len() == 1) {
         let config = ModelConfig { n, m, nz: 64, hyper_hidden: 64, ..ModelConfig::default() };
         let model = Model::new(config, 1)?;
         candidates

@@ -64,13 +64,23 @@ impl Picture {
         Self::from_dynamic(img, alpha)
     }
 
-    /// Encodes as PNG bytes (best compression, adaptive filters).
+    /// Encodes as PNG bytes with the smallest output ([`PngEffort::Smallest`]): the lossless
+    /// baseline's setting.
     pub fn to_png(&self) -> Result<Vec<u8>> {
+        self.to_png_with(PngEffort::Smallest)
+    }
+
+    /// Encodes as PNG bytes with the given effort.
+    pub fn to_png_with(&self, effort: PngEffort) -> Result<Vec<u8>> {
         use image::codecs::png::{CompressionType, FilterType, PngEncoder};
         use image::{ExtendedColorType, ImageEncoder};
         let mut out = Vec::new();
         let color = if self.channels == 3 { ExtendedColorType::Rgb8 } else { ExtendedColorType::L8 };
-        PngEncoder::new_with_quality(&mut out, CompressionType::Best, FilterType::Adaptive)
+        let (compression, filter) = match effort {
+            PngEffort::Smallest => (CompressionType::Best, FilterType::Adaptive),
+            PngEffort::Fast => (CompressionType::Fast, FilterType::Adaptive),
+        };
+        PngEncoder::new_with_quality(&mut out, compression, filter)
             .write_image(&self.data, self.width, self.height, color)
             .map_err(|e| KilnError::UnsupportedImage(format!("PNG encoding failed: {e}")))?;
         Ok(out)
@@ -80,6 +90,19 @@ impl Picture {
     pub fn to_rgb(&self) -> Vec<u8> {
         if self.channels == 3 { self.data.clone() } else { self.data.iter().flat_map(|&g| [g, g, g]).collect() }
     }
+}
+
+/// How hard the PNG writer compresses.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
+pub enum PngEffort {
+    /// Fast deflate: the default for decoded output. Measured on a 768×512 photograph, 2 cores:
+    /// `kiln decompress` takes 0.23 s instead of 0.85 s (user time 0.18 vs 0.73 s: with the
+    /// smallest setting the PNG writer costs several times the decode), and the PNG is 330 KB
+    /// instead of 246 KB.
+    #[default]
+    Fast,
+    /// Best deflate: smallest files; what the PNG size baseline uses.
+    Smallest,
 }
 
 /// Writes `bytes` to `path` through a temporary file in the same folder, renamed when complete,
@@ -94,4 +117,24 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     tmp.as_file().sync_all().map_err(|e| KilnError::io(path, e))?;
     tmp.persist(path).map_err(|e| KilnError::io(path, e.error))?;
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn both_png_efforts_store_the_same_pixels_and_smallest_is_not_larger() {
+        let (w, h) = (96u32, 64u32);
+        let data: Vec<u8> =
+            (0..w * h).flat_map(|i| [(i % w) as u8, (i / w * 3) as u8, ((i * 7919) % 13) as u8]).collect();
+        let pic = Picture { width: w, height: h, channels: 3, data };
+        let fast = pic.to_png_with(PngEffort::Fast).unwrap();
+        let small = pic.to_png_with(PngEffort::Smallest).unwrap();
+        for bytes in [&fast, &small] {
+            let back = image::load_from_memory(bytes).unwrap().into_rgb8();
+            assert_eq!(back.as_raw(), &pic.data);
+        }
+        assert!(small.len() <= fast.len(), "{} > {}", small.len(), fast.len());
+    }
 }

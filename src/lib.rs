@@ -20,5 +20,5 @@ pub mod train;
 
 pub use codec::{Codec, EncodeStats, Encoded};
 pub use error::{KilnError, Result};
-pub use image_io::{AlphaPolicy, Picture};
+pub use image_io::{AlphaPolicy, Picture, PngEffort};
 pub use model::{Model, ModelConfig, ModelFile};

@@ -18,7 +18,7 @@ use sha2::{Digest, Sha256};
 
 use crate::codec::Codec;
 use crate::error::{KilnError, Result};
-use crate::image_io::{AlphaPolicy, Picture, write_atomic};
+use crate::image_io::{AlphaPolicy, Picture, PngEffort, write_atomic};
 use crate::metrics::{ms_ssim, psnr};
 use crate::model::hex_prefix;
 use catalog::{CATALOG_FILE, Catalog, Entry, shard_file};
@@ -400,8 +400,9 @@ pub fn verify(codec: &Codec, dest: &Path) -> Result<(usize, Vec<Mismatch>)> {
     Ok((entries.len(), problems))
 }
 
-/// Decodes every container back to PNG under `out`, mirroring paths (extension → `.png`).
-pub fn unpack(codec: &Codec, dest: &Path, out: &Path) -> Result<usize> {
+/// Decodes every container back to PNG under `out`, mirroring paths (extension → `.png`),
+/// writing the PNGs with `png` effort.
+pub fn unpack(codec: &Codec, dest: &Path, out: &Path, png: PngEffort) -> Result<usize> {
     let cat = Catalog::open_existing(&dest.join(CATALOG_FILE))?;
     let entries = cat.all()?;
     entries.par_iter().try_for_each(|e| -> Result<()> {
@@ -412,7 +413,7 @@ pub fn unpack(codec: &Codec, dest: &Path, out: &Path) -> Result<usize> {
         if let Some(parent) = target.parent() {
             std::fs::create_dir_all(parent).map_err(|err| KilnError::io(parent, err))?;
         }
-        write_atomic(&target, &pic.to_png()?)
+        write_atomic(&target, &pic.to_png_with(png)?)
     })?;
     Ok(entries.len())
 }

@@ -95,8 +95,8 @@ pub fn verify(a: ArchiveArgs) -> anyhow::Result<()> {
     Ok(())
 }
 
-pub fn unpack(a: ArchiveArgs, out: PathBuf) -> anyhow::Result<()> {
-    let n = archive::unpack(&codec(a.model.as_deref())?, &a.dest, &out)?;
+pub fn unpack(a: ArchiveArgs, out: PathBuf, png: kiln::PngEffort) -> anyhow::Result<()> {
+    let n = archive::unpack(&codec(a.model.as_deref())?, &a.dest, &out, png)?;
     eprintln!("unpacked {n} file(s) to {}", out.display());
     Ok(())
 }

@@ -44,6 +44,9 @@ enum Command {
         archive: archive::ArchiveArgs,
         /// Output folder.
         out: PathBuf,
+        /// PNG writer effort: `fast`, or `smallest` (several times slower, files a few % smaller).
+        #[arg(long, value_enum, default_value = "fast")]
+        png: kiln::PngEffort,
     },
     /// Totals of an archive.
     Stats {
@@ -69,7 +72,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Evaluate(a) => evaluate::evaluate(a),
         Command::Pack(a) => archive::pack(a),
         Command::Verify(a) => archive::verify(a),
-        Command::Unpack { archive: a, out } => archive::unpack(a, out),
+        Command::Unpack { archive: a, out, png } => archive::unpack(a, out, png),
         Command::Stats { dest, json } => archive::stats(dest, json),
         Command::Catalog(c) => archive::catalog(c),
         Command::Train(a) => train::train(*a),

@@ -75,6 +75,11 @@ impl SubpixelConv {
     pub fn macs_per_input(&self) -> usize {
         self.conv.macs_per_output()
     }
+
+    /// The inner stride-1 convolution (before depth-to-space).
+    pub fn conv(&self) -> &Conv {
+        &self.conv
+    }
 }
 
 impl Module for SubpixelConv {

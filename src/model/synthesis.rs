@@ -51,6 +51,29 @@ impl Synthesis {
     }
 }
 
+impl Synthesis {
+    /// Runs `g_s` like `forward`, returning the wall time of each step as well (`g_s.0 conv`,
+    /// `g_s.0 depth-to-space`, `g_s.1 IGDN`, …): the decode profile of `examples/decode_profile`.
+    pub fn forward_timed(&self, y: &Tensor) -> Result<(Tensor, Vec<(String, std::time::Duration)>)> {
+        let mut times = Vec::new();
+        let mut h = y.clone();
+        let mut step = |label: String, f: &dyn Fn(&Tensor) -> Result<Tensor>, h: &mut Tensor| -> Result<()> {
+            let t = std::time::Instant::now();
+            *h = f(h)?;
+            times.push((label, t.elapsed()));
+            Ok(())
+        };
+        for (i, up) in self.ups.iter().enumerate() {
+            step(format!("g_s.{} conv", 2 * i), &|x| up.conv().forward(x), &mut h)?;
+            step(format!("g_s.{} depth-to-space", 2 * i), &super::layers::depth_to_space, &mut h)?;
+            if let Some(g) = self.igdns.get(i) {
+                step(format!("g_s.{} IGDN", 2 * i + 1), &|x| g.forward(x), &mut h)?;
+            }
+        }
+        Ok((h, times))
+    }
+}
+
 impl Module for Synthesis {
     fn forward(&self, y: &Tensor) -> Result<Tensor> {
         let mut h = y.clone();
