@@ -7,6 +7,9 @@ use kiln::eval::plot::{Plot, Series};
 
 const COLORS: [[u8; 3]; 3] = [[200, 60, 40], [40, 110, 190], [60, 150, 70]];
 
+/// One quality's validation history: label, `(step, PSNR)` and `(step, bpp)`.
+type Curve = (String, Vec<(f64, f64)>, Vec<(f64, f64)>);
+
 fn main() -> anyhow::Result<()> {
     let args: Vec<String> = std::env::args().collect();
     let [_, log, prefix] = args.as_slice() else {
@@ -14,7 +17,7 @@ fn main() -> anyhow::Result<()> {
     };
     let text = std::fs::read_to_string(log)?;
     // "validation at step N: q1: B bpp P dB, q50: ..., q100: ..."
-    let mut val: Vec<(String, Vec<(f64, f64)>, Vec<(f64, f64)>)> = Vec::new();
+    let mut val: Vec<Curve> = Vec::new();
     // "step N/T  loss L  ...": mean loss over each block of 1000 steps.
     let mut blocks: std::collections::BTreeMap<u64, (f64, usize)> = Default::default();
     for line in text.lines() {
@@ -50,7 +53,7 @@ fn main() -> anyhow::Result<()> {
         }
     }
     anyhow::ensure!(!val.is_empty() || !blocks.is_empty(), "{log}: no training or validation lines");
-    let series = |pick: fn(&(String, Vec<(f64, f64)>, Vec<(f64, f64)>)) -> &Vec<(f64, f64)>| {
+    let series = |pick: fn(&Curve) -> &Vec<(f64, f64)>| {
         val.iter()
             .zip(COLORS.iter().cycle())
             .map(|(v, c)| Series { label: v.0.clone(), color: *c, points: pick(v).clone() })
