@@ -94,3 +94,52 @@ fn gradient_matches_finite_differences() {
         }
     }
 }
+
+/// The decoder's fused sub-pixel layer against the same steps written with candle's own ops:
+/// `conv2d`, the depth-to-space rearrangement as reshape/permute (PyTorch's pixel-shuffle
+/// order, channel `4c + 2dy + dx`), and the inverse GDN `y = x · √(β + γ·x²)` per pixel.
+#[test]
+fn fused_subpixel_igdn_matches_conv_depth_to_space_and_igdn_in_candle() {
+    use kiln::kernels::fused_conv::subpixel_igdn_forward;
+    let mut rng = ChaCha8Rng::seed_from_u64(12);
+    // (batch, cin, n, h, w, k): odd sizes, one and many channels, both kernel sizes.
+    for (b, ci, n, h, w, k) in [(1, 1, 1, 5, 7, 3), (2, 3, 2, 9, 6, 3), (1, 16, 8, 11, 13, 5), (1, 24, 16, 8, 20, 3)] {
+        let x = random(&mut rng, &[b, ci, h, w]);
+        let wt = random(&mut rng, &[4 * n, ci, k, k]);
+        let bias = random(&mut rng, &[4 * n]);
+        let beta = (random(&mut rng, &[n]).abs().unwrap() + 0.1).unwrap();
+        let gamma = (random(&mut rng, &[n, n]).abs().unwrap() * 0.2).unwrap();
+        let conv =
+            x.conv2d(&wt, k / 2, 1, 1, 1).unwrap().broadcast_add(&bias.reshape((1, 4 * n, 1, 1)).unwrap()).unwrap();
+        let up = conv
+            .reshape((b, n, 2, 2, h, w))
+            .unwrap()
+            .permute((0, 1, 4, 2, 5, 3))
+            .unwrap()
+            .reshape((b, n, 2 * h, 2 * w))
+            .unwrap();
+        let x2 = up.sqr().unwrap().reshape((b, n, 4 * h * w)).unwrap();
+        let norm = gamma.broadcast_matmul(&x2).unwrap().broadcast_add(&beta.reshape((1, n, 1)).unwrap()).unwrap();
+        let igdn = (&up * norm.sqrt().unwrap().reshape((b, n, 2 * h, 2 * w)).unwrap()).unwrap();
+        let plain = subpixel_igdn_forward(&x, &wt, &bias, None).unwrap();
+        assert!(rel_err(&plain, &up) <= 1e-5, "depth-to-space {:?}: {}", (b, ci, n, h, w, k), rel_err(&plain, &up));
+        let fused = subpixel_igdn_forward(&x, &wt, &bias, Some((&beta, &gamma))).unwrap();
+        assert!(rel_err(&fused, &igdn) <= 1e-5, "with IGDN {:?}: {}", (b, ci, n, h, w, k), rel_err(&fused, &igdn));
+    }
+    let (x, wt, bias) = (random(&mut rng, &[1, 3, 4, 4]), random(&mut rng, &[6, 3, 3, 3]), random(&mut rng, &[6]));
+    assert!(subpixel_igdn_forward(&x, &wt, &bias, None).is_err(), "6 output channels are not 4·N");
+}
+
+/// The trained default's synthesis (real weights, including the GDN's tiny off-diagonal γ): the
+/// decoder's fused path against the training path.
+#[test]
+fn decode_path_of_the_default_synthesis_matches_its_training_path() {
+    let file = kiln::ModelFile::load(None).unwrap();
+    let m = file.model.config.m;
+    let mut rng = ChaCha8Rng::seed_from_u64(13);
+    let y = (random(&mut rng, &[1, m, 3, 5]) * 4.0).unwrap().round().unwrap();
+    let reference = candle_core::Module::forward(&file.model.g_s, &y).unwrap();
+    let fused = file.model.g_s.forward_decode(&y).unwrap();
+    assert_eq!(fused.dims(), &[1, 3, 48, 80]);
+    assert!(rel_err(&fused, &reference) <= 1e-5, "{}", rel_err(&fused, &reference));
+}

@@ -274,7 +274,15 @@ fn weight_matrix(w: &[f32], o: usize, c: usize, k: usize) -> Vec<f32> {
 /// row stride `C`, if the positions are counted along the padded width (the `2·pad` extra
 /// positions per row are computed and dropped). So `Y = Σ_taps X_tap · W_tap`: `k²` products of
 /// depth `C` per tile of output rows, reading the image instead of writing `k²` copies of it.
-fn forward_stride1(x: &[f32], wm: &[f32], bias: &[f32], [b, c, h, w]: [usize; 4], o: usize, g: Im2Col) -> Vec<f32> {
+fn forward_stride1(
+    x: &[f32],
+    wm: &[f32],
+    bias: &[f32],
+    [b, c, h, w]: [usize; 4],
+    o: usize,
+    g: Im2Col,
+    store: Store,
+) -> Vec<f32> {
     let (k, pad) = (g.k, g.pad);
     let (ho, wo) = g.output_size(h, w);
     let (hp, wp) = (h + 2 * pad, w + 2 * pad);
@@ -283,6 +291,11 @@ fn forward_stride1(x: &[f32], wm: &[f32], bias: &[f32], [b, c, h, w]: [usize; 4]
     let rows_per_tile = ((1 << 20) / ((c + o) * 4 * wp)).clamp(1, ho.max(1));
     let tiles = ho.div_ceil(rows_per_tile);
     let max_m = (rows_per_tile - 1) * wp + wo;
+    // The sub-pixel store needs four more (O/4 × m) scratch blocks after the tile's result.
+    let buf_len = match store {
+        Store::Plain => o * max_m,
+        Store::Subpixel { .. } => o * max_m + 4 * (o / 4) * max_m,
+    };
     let mut y = vec![0f32; b * o * l];
     let dst = SharedDst::new(&mut y);
     let tile = |padded: &[f32], bi: usize, t: usize, buf: &mut Vec<f32>| {
@@ -297,6 +310,13 @@ fn forward_stride1(x: &[f32], wm: &[f32], bias: &[f32], [b, c, h, w]: [usize; 4]
                 let rhs = View { data: &wm[tap * c * o..(tap + 1) * c * o], rs: o, cs: 1 };
                 matmul(m, o, c, &mut buf[..o * m], 1, m, tap > 0, lhs, rhs);
             }
+        }
+        if let Store::Subpixel { igdn } = store {
+            store_subpixel(buf, m, [o, wp, wo, l], bias, igdn, oys, |off, len| {
+                // SAFETY: this tile alone writes output rows `2·oys` … of image `bi`.
+                unsafe { dst.slice(bi * o * l + off, len) }
+            });
+            return;
         }
         for (oc, &bv) in bias.iter().enumerate() {
             for oy in oys.clone() {
@@ -322,10 +342,10 @@ fn forward_stride1(x: &[f32], wm: &[f32], bias: &[f32], [b, c, h, w]: [usize; 4]
             (0..tiles).for_each(|t| tile(padded, bi, t, buf));
         } else {
             let padded = &*padded;
-            (0..tiles).into_par_iter().for_each_init(|| vec![0f32; o * max_m], |buf, t| tile(padded, bi, t, buf));
+            (0..tiles).into_par_iter().for_each_init(|| vec![0f32; buf_len], |buf, t| tile(padded, bi, t, buf));
         }
     };
-    let scratch = || (vec![0f32; hp * wp * c], vec![0f32; o * max_m]);
+    let scratch = || (vec![0f32; hp * wp * c], vec![0f32; buf_len]);
     if batch_parallel(b) {
         (0..b).into_par_iter().for_each_init(scratch, |(padded, buf), bi| image(bi, padded, buf));
     } else {
@@ -333,6 +353,108 @@ fn forward_stride1(x: &[f32], wm: &[f32], bias: &[f32], [b, c, h, w]: [usize; 4]
         (0..b).for_each(|bi| image(bi, &mut padded, &mut buf));
     }
     y
+}
+
+/// What the stride-1 forward does with each finished tile of output rows.
+#[derive(Debug, Clone, Copy)]
+enum Store<'a> {
+    /// Add the bias and store as `(B, O, Ho, Wo)`.
+    Plain,
+    /// Add the bias, apply an inverse GDN `(β, γ)` (already re-parameterised) to each
+    /// sub-position's `O/4` channels if given, and store depth-to-space as `(B, O/4, 2Ho, 2Wo)`.
+    Subpixel { igdn: Option<(&'a [f32], &'a [f32])> },
+}
+
+/// The sub-pixel store of one tile. `buf` holds the tile's result `Yᵀ (O × m)` (positions
+/// counted along the padded width `wp`) followed by scratch; `out(offset, len)` hands out the
+/// image's output elements `offset..offset + len` (of `O·L` = `O/4 · 2Ho · 2Wo`).
+fn store_subpixel<'o>(
+    buf: &mut [f32],
+    m: usize,
+    [o, wp, wo, l]: [usize; 4],
+    bias: &[f32],
+    igdn: Option<(&[f32], &[f32])>,
+    oys: std::ops::Range<usize>,
+    out: impl Fn(usize, usize) -> &'o mut [f32],
+) {
+    let n = o / 4;
+    let (result, scratch) = buf.split_at_mut(o * m);
+    let (pair, rest) = scratch.split_at_mut(2 * n * m);
+    let (v2, norm) = rest.split_at_mut(n * m);
+    let (v2, norm) = (&mut v2[..n * m], &mut norm[..n * m]);
+    let plane = 4 * l; // one output channel: 2Ho × 2Wo
+    // Channel 4c + 2dy + dx of the convolution lands at (c, 2y + dy, 2x + dx): both dx of one dy
+    // are finished first, so that each output row is written once, left to right.
+    for dy in 0..2 {
+        for dx in 0..2 {
+            let s = 2 * dy + dx;
+            let v = &mut pair[dx * n * m..][..n * m];
+            for cc in 0..n {
+                let (src, bv) = (&result[(4 * cc + s) * m..][..m], bias[4 * cc + s]);
+                v[cc * m..][..m].iter_mut().zip(src).for_each(|(d, &x)| *d = x + bv);
+            }
+            if let Some((beta, gamma)) = igdn {
+                v2.iter_mut().zip(v.iter()).for_each(|(d, &x)| *d = x * x);
+                let lhs = View { data: gamma, rs: n, cs: 1 };
+                let rhs = View { data: v2, rs: m, cs: 1 };
+                matmul(n, m, n, norm, m, 1, false, lhs, rhs);
+                for cc in 0..n {
+                    let b = beta[cc];
+                    let row = &mut v[cc * m..][..m];
+                    row.iter_mut().zip(&norm[cc * m..][..m]).for_each(|(x, &nv)| *x *= (nv + b).sqrt());
+                }
+            }
+        }
+        let (even, odd) = pair.split_at(n * m);
+        for cc in 0..n {
+            for oy in oys.clone() {
+                let row = out(cc * plane + (2 * oy + dy) * 2 * wo, 2 * wo);
+                let at = cc * m + (oy - oys.start) * wp;
+                let (e, o) = (&even[at..][..wo], &odd[at..][..wo]);
+                for ((dst, &a), &b) in row.chunks_exact_mut(2).zip(e).zip(o) {
+                    dst[0] = a;
+                    dst[1] = b;
+                }
+            }
+        }
+    }
+}
+
+/// Decoding only (no gradient): a sub-pixel upsampler `x (B, C, H, W) ⊛ weight (4N, C, k, k) +
+/// bias`, stride 1 with `k/2` padding, followed by an optional inverse GDN `(β (N), γ (N, N))`
+/// (re-parameterised, as [`crate::model::gdn::Gdn::effective_parameters`] gives them), stored
+/// depth-to-space as `(B, N, 2H, 2W)` in one pass over each tile of output rows, so that neither
+/// the `4N`-channel result nor the upsampled image before the GDN is ever written out.
+///
+/// Equal to `igdn(depth_to_space(conv(x)))` up to float rounding (tested to 1e-5 relative).
+pub fn subpixel_igdn_forward(
+    x: &Tensor,
+    weight: &Tensor,
+    bias: &Tensor,
+    igdn: Option<(&Tensor, &Tensor)>,
+) -> Result<Tensor> {
+    let (b, c, h, w) = x.dims4()?;
+    let (o, c2, k, k2) = weight.dims4()?;
+    if c != c2 || k != k2 || k % 2 == 0 || o % 4 != 0 || bias.dims1()? != o {
+        bail!("sub-pixel forward: weight {:?}, bias {:?} do not fit input {:?}", weight.dims(), bias.dims(), x.dims());
+    }
+    let vec = |t: &Tensor| -> Result<Vec<f32>> { t.flatten_all()?.to_vec1::<f32>() };
+    let (xs, wt, bs) = (vec(x)?, vec(weight)?, vec(bias)?);
+    let params = match igdn {
+        Some((beta, gamma)) => {
+            let (beta, gamma) = (vec(beta)?, vec(gamma)?);
+            if beta.len() != o / 4 || gamma.len() != (o / 4) * (o / 4) {
+                bail!("sub-pixel forward: GDN of {} channels after a {o}-channel convolution", beta.len());
+            }
+            Some((beta, super::fused_gdn::flush_subnormal(&gamma)))
+        }
+        None => None,
+    };
+    let g = Im2Col { k, stride: 1, pad: k / 2 };
+    let wm = weight_matrix(&wt, o, c, k);
+    let store = Store::Subpixel { igdn: params.as_ref().map(|(b, g)| (b.as_slice(), g.as_slice())) };
+    let y = forward_stride1(&xs, &wm, &bs, [b, c, h, w], o, g, store);
+    Tensor::from_vec(y, (b, o / 4, 2 * h, 2 * w), x.device())
 }
 
 /// The fused convolution: `x (B, C, H, W) ⊛ weight (O, C, k, k) + bias (O)`.
@@ -373,7 +495,7 @@ impl CustomOp3 for FusedConv {
         }
         let wm = weight_matrix(wt, o, c, k);
         if g.stride == 1 {
-            let y = forward_stride1(x, &wm, bias, [b, c, h, w], o, g);
+            let y = forward_stride1(x, &wm, bias, [b, c, h, w], o, g, Store::Plain);
             return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
         }
         // Start from the bias and accumulate the product onto it.

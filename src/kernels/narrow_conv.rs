@@ -71,7 +71,11 @@ pub(crate) fn forward_narrow(
     }
     let pad = k / 2;
     let (hp, wp) = (h + 2 * pad, w + 2 * pad);
-    let plane = hp * wp;
+    // The padded image is stored row by row, each row holding all channels (H, C, W): a block's
+    // k input rows are then k runs of C·Wp floats, where channel planes (C, H, W) would make it
+    // read from C·k places megabytes apart (measured on the decoder's 768×512 last layer:
+    // 18–21 ms in planes, see DEVELOPERS.md for the figure after).
+    let (cstride, rstride) = (wp, c * wp);
     let block = isa.block();
     // Weights as [c][ky][kx][o]: the O weights of one tap are adjacent.
     let mut wk = vec![0f32; weight.len()];
@@ -85,30 +89,35 @@ pub(crate) fn forward_narrow(
     let l = h * w;
     let mut y = vec![0f32; b * o * l];
     let dst = SharedDst::new(&mut y);
-    // Padded planes of one image, with one block of slack: the last run of a row reads up to
-    // `block − 1` positions past the last plane.
+    // Padded rows of one image, with one block of slack: the last run of a row reads up to
+    // `block − 1` positions past the last row.
     let pad_image = |bi: usize, padded: &mut Vec<f32>| {
         padded.clear();
-        padded.resize(c * plane + block, 0.0);
+        padded.resize(hp * rstride + block, 0.0);
         let img = &x[bi * c * l..(bi + 1) * c * l];
-        for ci in 0..c {
-            for yy in 0..h {
-                let d = ci * plane + (yy + pad) * wp + pad;
-                padded[d..d + w].copy_from_slice(&img[(ci * h + yy) * w..][..w]);
+        let fill = |yy: usize, row: &mut [f32]| {
+            for ci in 0..c {
+                row[ci * cstride + pad..][..w].copy_from_slice(&img[(ci * h + yy) * w..][..w]);
             }
+        };
+        let rows = &mut padded[pad * rstride..(pad + h) * rstride];
+        if nested() {
+            rows.chunks_mut(rstride).enumerate().for_each(|(yy, row)| fill(yy, row));
+        } else {
+            rows.par_chunks_mut(rstride).enumerate().for_each(|(yy, row)| fill(yy, row));
         }
     };
-    // Output rows `rows` of image `bi` from its padded planes.
+    // Output rows `rows` of image `bi` from its padded rows.
     let rows_task = |padded: &[f32], bi: usize, rows: std::ops::Range<usize>| {
         let mut acc = vec![0f32; o * block];
         for oy in rows {
             let mut ox = 0;
             while ox < w {
-                let p0 = oy * wp + ox;
-                assert!(p0 + (k - 1) * (wp + 1) + block <= padded.len() - (c - 1) * plane);
+                let p0 = oy * rstride + ox;
+                assert!((c - 1) * cstride + p0 + (k - 1) * (rstride + 1) + block <= padded.len());
                 // SAFETY: the assertion bounds every read: channel `c − 1`, tap (k−1, k−1),
                 // lane `block − 1` is the last element touched; the CPU feature was detected.
-                unsafe { run_block(isa, o, padded.as_ptr(), plane, c, k, wp, &wk, p0, &mut acc) };
+                unsafe { run_block(isa, o, padded.as_ptr(), cstride, c, k, rstride, &wk, p0, &mut acc) };
                 let n = block.min(w - ox);
                 for (oc, &bv) in bias.iter().enumerate() {
                     // SAFETY: this task alone writes output rows `rows` of image `bi`.
@@ -138,7 +147,8 @@ pub(crate) fn forward_narrow(
 ///
 /// # Safety
 /// `isa` must be supported by the CPU, `o` one of [`NARROW_OUTPUTS`], and every element read
-/// (`planes[ci·plane + p0 + ky·wp + kx + lane]`, lane < block) in bounds.
+/// (`planes[ci·plane + p0 + ky·wp + kx + lane]`, lane < block; `plane` is the channel stride and
+/// `wp` the row stride of the padded input) in bounds.
 #[allow(clippy::too_many_arguments)]
 unsafe fn run_block(
     isa: Isa,

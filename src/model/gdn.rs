@@ -40,6 +40,16 @@ impl Gdn {
 }
 
 impl Gdn {
+    /// The layer's direction.
+    pub fn direction(&self) -> GdnDirection {
+        self.direction
+    }
+
+    /// `(β, γ)` as the layer applies them: `β = β_raw² + 1e-6` and `γ = (γ_raw + c·I)²`.
+    pub fn effective_parameters(&self) -> Result<(Tensor, Tensor)> {
+        self.parameters()
+    }
+
     fn parameters(&self) -> Result<(Tensor, Tensor)> {
         let beta = (self.beta_raw.sqr()? + BETA_FLOOR)?;
         let gamma = (&self.gamma_raw + (&self.eye * GAMMA_OFFSET)?)?.sqr()?;

@@ -39,6 +39,16 @@ impl Conv {
         self.config
     }
 
+    /// Weights `(O, C, k, k)`.
+    pub fn weight(&self) -> &Tensor {
+        &self.weight
+    }
+
+    /// Bias `(O)`.
+    pub fn bias(&self) -> &Tensor {
+        &self.bias
+    }
+
     /// Multiply-adds per output position.
     pub fn macs_per_output(&self) -> usize {
         self.config.in_channels * self.config.out_channels * self.config.kernel * self.config.kernel
