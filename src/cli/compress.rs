@@ -38,7 +38,7 @@ pub struct DecompressArgs {
     /// Model file the container was written with (default: the embedded model).
     #[arg(long)]
     model: Option<PathBuf>,
-    /// PNG writer effort: `fast`, or `smallest` (several times slower, files a few % smaller).
+    /// PNG writer effort: `fast`, or `smallest` (several times slower, files about a quarter smaller).
     #[arg(long, value_enum, default_value = "fast")]
     png: PngEffort,
 }

@@ -44,7 +44,7 @@ enum Command {
         archive: archive::ArchiveArgs,
         /// Output folder.
         out: PathBuf,
-        /// PNG writer effort: `fast`, or `smallest` (several times slower, files a few % smaller).
+        /// PNG writer effort: `fast`, or `smallest` (several times slower, files about a quarter smaller).
         #[arg(long, value_enum, default_value = "fast")]
         png: kiln::PngEffort,
     },

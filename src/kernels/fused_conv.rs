@@ -313,7 +313,7 @@ fn forward_stride1(
         }
         if let Store::Subpixel { igdn } = store {
             store_subpixel(buf, m, [o, wp, wo, l], bias, igdn, oys, |off, len| {
-                // SAFETY: this tile alone writes output rows `2·oys` … of image `bi`.
+                // SAFETY: this tile alone writes output rows 2·oys.start..2·oys.end of image `bi`.
                 unsafe { dst.slice(bi * o * l + off, len) }
             });
             return;
