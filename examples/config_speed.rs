@@ -5,23 +5,18 @@
 
 use std::time::Instant;
 
+mod common;
+
 #[global_allocator]
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 use kiln::model::TrainingSummary;
-use kiln::{Codec, Model, ModelConfig, ModelFile, Picture};
+use kiln::{Codec, Model, ModelConfig, ModelFile};
 
 fn main() -> anyhow::Result<()> {
     kiln::allocator::keep_freed_memory();
     let (w, h) = (768u32, 512u32);
-    // A smooth gradient with texture: any content codes; the transforms' cost does not depend on it.
-    let data: Vec<u8> = (0..w * h)
-        .flat_map(|i| {
-            let (x, y) = (i % w, i / w);
-            [(x / 3) as u8, (y / 2) as u8, ((x * 7 + y * 13) % 251) as u8]
-        })
-        .collect();
-    let pic = Picture { width: w, height: h, channels: 3, data };
+    let pic = common::test_picture(w, h);
     println!(
         "{:>18} {:>4} {:>4} {:>10} {:>10} {:>10} {:>9}",
         "weights", "N", "M", "enc kFLOP", "dec kFLOP", "decode ms", "Mpx/s"

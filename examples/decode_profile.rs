@@ -5,7 +5,9 @@
 use std::time::{Duration, Instant};
 
 use candle_core::{Device, Tensor};
-use kiln::{Codec, ModelFile, Picture};
+use kiln::{Codec, ModelFile};
+
+mod common;
 
 #[global_allocator]
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
@@ -18,13 +20,7 @@ fn median(mut v: Vec<Duration>) -> Duration {
 fn main() -> anyhow::Result<()> {
     kiln::allocator::keep_freed_memory();
     let (w, h) = (768u32, 512u32);
-    let data: Vec<u8> = (0..w * h)
-        .flat_map(|i| {
-            let (x, y) = (i % w, i / w);
-            [(x / 3) as u8, (y / 2) as u8, ((x * 7 + y * 13) % 251) as u8]
-        })
-        .collect();
-    let pic = Picture { width: w, height: h, channels: 3, data };
+    let pic = common::test_picture(w, h);
     let codec = Codec::new(ModelFile::load(None)?)?;
     let bytes = codec.encode(&pic, 50.0)?.bytes;
     let reps = 9;

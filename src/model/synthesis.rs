@@ -57,24 +57,7 @@ impl Synthesis {
     /// layer as in `forward`. Equal to `forward` up to float rounding; 81 instead of 99 ms for a
     /// 768×512 image in one run (`examples/decode_profile`).
     pub fn forward_decode(&self, y: &Tensor) -> Result<Tensor> {
-        let mut h = y.clone();
-        for (i, up) in self.ups.iter().enumerate() {
-            h = match self.igdns.get(i) {
-                Some(g) if g.direction() == GdnDirection::Inverse => {
-                    let (beta, gamma) = g.effective_parameters()?;
-                    let conv = up.conv();
-                    crate::kernels::fused_conv::subpixel_igdn_forward(
-                        &h,
-                        conv.weight(),
-                        conv.bias(),
-                        Some((&beta, &gamma)),
-                    )?
-                }
-                Some(g) => g.forward(&up.forward(&h)?)?,
-                None => up.forward(&h)?,
-            };
-        }
-        Ok(h)
+        Ok(self.forward_timed(y, true)?.0)
     }
 
     /// Runs `g_s` like `forward` (`fused = false`) or `forward_decode` (`fused = true`), returning
