@@ -1,6 +1,8 @@
 //! Where a decode's time goes: the whole decode of a 768×512 image at quality 50 with the
 //! embedded model, and each step of its synthesis transform `g_s` on the training path and on
-//! the decoder's fused path (median of 9 runs each), with the GFLOP/s of each convolution. `cargo run --release --example decode_profile`
+//! the decoder's fused path (median of 9 runs each), with the GFLOP/s of each convolution; and
+//! the decoder's GFLOP/s over candle's `matmul`'s, each decode paired with a matmul run right
+//! after it (median of 18 pairs). `cargo run --release --example decode_profile`
 
 use std::time::{Duration, Instant};
 
@@ -24,11 +26,26 @@ fn main() -> anyhow::Result<()> {
     let codec = Codec::new(ModelFile::load(None)?)?;
     let bytes = codec.encode(&pic, 50.0)?.bytes;
     let reps = 9;
-    let mut whole = Vec::new();
-    for _ in 0..=reps {
+    // The whole decode, each run paired with candle's matmul on 1024×1024 f32 (the ruler of
+    // `cargo bench --bench codec`) right after it, so that the ratio of their FLOP rates is
+    // taken under the same machine load: on a shared machine the load drifts by ±20% between
+    // runs, more than the differences measured here.
+    let (_, dec) = codec.model_file().model.macs_per_pixel();
+    let dec_flops = 2.0 * dec * (w * h) as f64;
+    let a = Tensor::randn(0f32, 1.0, (1024, 1024), &Device::Cpu)?;
+    let mm_flops = 2.0 * 1024f64.powi(3);
+    let (mut whole, mut ratios) = (Vec::new(), Vec::new());
+    for i in 0..=2 * reps {
         let t = Instant::now();
         codec.decode(&bytes)?;
-        whole.push(t.elapsed());
+        let t_dec = t.elapsed();
+        let t = Instant::now();
+        a.matmul(&a)?;
+        let t_mm = t.elapsed();
+        if i > 0 {
+            whole.push(t_dec);
+            ratios.push((dec_flops / t_dec.as_secs_f64()) / (mm_flops / t_mm.as_secs_f64()));
+        }
     }
     let model = &codec.model_file().model;
     let (m, n) = (model.config.m, model.config.n);
@@ -74,13 +91,20 @@ fn main() -> anyhow::Result<()> {
         }
         println!("  {:26} {:9.2}", "total", total.as_secs_f64() * 1e3);
     }
-    let (_, dec) = model.macs_per_pixel();
     let whole = median(whole);
     println!(
         "{:28} {:9.2} {:9.1}  (decoder FLOPs / decode time)",
         "whole decode",
         whole.as_secs_f64() * 1e3,
-        2.0 * dec * (w * h) as f64 / whole.as_secs_f64() / 1e9
+        dec_flops / whole.as_secs_f64() / 1e9
+    );
+    ratios.sort_by(f64::total_cmp);
+    println!(
+        "decoder GFLOP/s / matmul GFLOP/s, {} paired runs: median {:.3} (range {:.3}–{:.3})",
+        ratios.len(),
+        ratios[ratios.len() / 2],
+        ratios[0],
+        ratios[ratios.len() - 1]
     );
     Ok(())
 }

@@ -370,7 +370,7 @@ impl Codec {
         }
         dec_y.finish()?;
         let y = Tensor::from_vec(y_hat, (1, cfg.m, hy, wy), &Device::Cpu)?;
-        let x = self.file.model.g_s.forward_decode(&y)?.flatten_all()?.to_vec1::<f32>()?; // (1, 3, 16hy, 16wy)
-        Ok(planes_to_rgb8(&x, 16 * hy, 16 * wy, tw, th))
+        let x = self.file.model.g_s.forward_decode(&y)?; // (1, 3, 16hy, 16wy)
+        Ok(crate::kernels::conv::with_f32(&x, |x| Ok(planes_to_rgb8(x, 16 * hy, 16 * wy, tw, th)))?)
     }
 }

@@ -87,6 +87,17 @@ pub(crate) fn contiguous_f32<'a>(storage: &'a CpuStorage, layout: &Layout) -> Re
     Ok(&storage.as_slice::<f32>()?[start..end])
 }
 
+/// `f` on the data of a CPU f32 tensor in row-major order, read in place (no copy unless the
+/// tensor is not contiguous): the decoder's activations are megabytes each.
+pub(crate) fn with_f32<T>(t: &Tensor, f: impl FnOnce(&[f32]) -> Result<T>) -> Result<T> {
+    let t = t.contiguous()?;
+    let (storage, layout) = t.storage_and_layout();
+    match &*storage {
+        candle_core::Storage::Cpu(cpu) => f(contiguous_f32(cpu, layout)?),
+        _ => bail!("kiln's kernels run on the CPU: move the tensor to Device::Cpu first"),
+    }
+}
+
 impl CustomOp1 for Im2Col {
     fn name(&self) -> &'static str {
         "kiln-im2col"

@@ -8,11 +8,13 @@
 //! candle's autograd sees a single node, so no zero-filled gradient buffers are allocated for the
 //! intermediate steps.
 
+use std::mem::MaybeUninit;
+
 use candle_core::{CpuStorage, CustomOp1, CustomOp2, CustomOp3, Layout, Result, Shape, Tensor, bail};
 use gemm::Parallelism;
 use rayon::prelude::*;
 
-use super::conv::{Im2Col, contiguous_f32};
+use super::conv::{Im2Col, contiguous_f32, with_f32};
 use super::narrow_conv::{Isa, forward_narrow};
 
 /// A strided matrix view over a slice: element `(i, j)` is at `i·rs + j·cs`.
@@ -52,7 +54,7 @@ pub(crate) struct SharedDst {
     len: usize,
 }
 
-// SAFETY: a `SharedDst` is only written through `matmul_shared` and `slice`, whose contracts
+// SAFETY: a `SharedDst` is only written through `matmul_shared` and `slice_uninit`, whose contracts
 // make callers keep the element sets of concurrent writers disjoint.
 unsafe impl Send for SharedDst {}
 unsafe impl Sync for SharedDst {}
@@ -63,16 +65,26 @@ impl SharedDst {
         SharedDst { ptr: dst.as_mut_ptr(), len: dst.len() }
     }
 
-    /// Elements `offset..offset + len` (bounds checked).
+    /// Shares not yet initialised memory (a `Vec`'s spare capacity) that the writers fill with
+    /// [`SharedDst::slice_uninit`] alone, for outputs that are written in full: clearing them
+    /// first would be a wasted pass over megabytes. Never hand it to [`matmul_shared`] with
+    /// `accumulate` (that reads the destination).
+    pub(crate) fn new_uninit(dst: &mut [MaybeUninit<f32>]) -> Self {
+        SharedDst { ptr: dst.as_mut_ptr().cast(), len: dst.len() }
+    }
+
+    /// Elements `offset..offset + len` (bounds checked), possibly not yet initialised: only
+    /// written, never read.
     ///
     /// # Safety
     /// No other thread may access those elements while the slice lives, and the buffer must
     /// outlive it.
     #[allow(clippy::mut_from_ref)]
-    pub(crate) unsafe fn slice(&self, offset: usize, len: usize) -> &mut [f32] {
+    pub(crate) unsafe fn slice_uninit(&self, offset: usize, len: usize) -> &mut [MaybeUninit<f32>] {
         assert!(offset + len <= self.len, "shared destination: {offset}+{len} beyond {}", self.len);
-        // SAFETY: in bounds (checked); exclusive by the caller's contract.
-        unsafe { std::slice::from_raw_parts_mut(self.ptr.add(offset), len) }
+        // SAFETY: in bounds (checked); exclusive by the caller's contract; `MaybeUninit<f32>`
+        // has the layout of `f32` and no validity requirement.
+        unsafe { std::slice::from_raw_parts_mut(self.ptr.add(offset).cast(), len) }
     }
 }
 
@@ -189,25 +201,31 @@ fn patch_rows(img: &[f32], g: Im2Col, h: usize, w: usize, c: usize, oys: std::op
     let (_, wo) = g.output_size(h, w);
     let row = g.k * g.k * c;
     let out = &mut out[..oys.len() * wo * row];
+    // Each element is written once: copied from the image or, outside it, set to zero (no
+    // clearing pass first).
     for_each_chunk(out, wo * row, |i, line| {
         let oy = oys.start + i;
-        line.iter_mut().for_each(|v| *v = 0.0);
         for ky in 0..g.k {
             let iy = (oy * g.stride + ky) as isize - g.pad as isize;
+            let blocks = (0..wo).map(|ox| ox * row + ky * g.k * c);
             if iy < 0 || iy as usize >= h {
+                blocks.for_each(|at| line[at..at + g.k * c].fill(0.0));
                 continue;
             }
             let src = &img[iy as usize * w * c..(iy as usize + 1) * w * c];
-            for ox in 0..wo {
-                let dst = &mut line[ox * row + ky * g.k * c..ox * row + (ky + 1) * g.k * c];
+            for (ox, at) in blocks.enumerate() {
+                let dst = &mut line[at..at + g.k * c];
                 let x0 = (ox * g.stride) as isize - g.pad as isize;
                 if x0 >= 0 && x0 as usize + g.k <= w {
                     dst.copy_from_slice(&src[x0 as usize * c..(x0 as usize + g.k) * c]);
                 } else {
                     for kx in 0..g.k {
                         let ix = x0 + kx as isize;
+                        let d = &mut dst[kx * c..(kx + 1) * c];
                         if ix >= 0 && (ix as usize) < w {
-                            dst[kx * c..(kx + 1) * c].copy_from_slice(&src[ix as usize * c..(ix as usize + 1) * c]);
+                            d.copy_from_slice(&src[ix as usize * c..(ix as usize + 1) * c]);
+                        } else {
+                            d.fill(0.0);
                         }
                     }
                 }
@@ -296,8 +314,9 @@ fn forward_stride1(
         Store::Plain => o * max_m,
         Store::Subpixel { .. } => o * max_m + 4 * (o / 4) * max_m,
     };
-    let mut y = vec![0f32; b * o * l];
-    let dst = SharedDst::new(&mut y);
+    // Every element of `y` is written by exactly one tile (below), so it starts uninitialised.
+    let mut y: Vec<f32> = Vec::with_capacity(b * o * l);
+    let dst = SharedDst::new_uninit(&mut y.spare_capacity_mut()[..b * o * l]);
     let tile = |padded: &[f32], bi: usize, t: usize, buf: &mut Vec<f32>| {
         let oys = t * rows_per_tile..((t + 1) * rows_per_tile).min(ho);
         let m = (oys.len() - 1) * wp + wo;
@@ -314,21 +333,24 @@ fn forward_stride1(
         if let Store::Subpixel { igdn } = store {
             store_subpixel(buf, m, [o, wp, wo, l], bias, igdn, oys, |off, len| {
                 // SAFETY: this tile alone writes output rows 2·oys.start..2·oys.end of image `bi`.
-                unsafe { dst.slice(bi * o * l + off, len) }
+                unsafe { dst.slice_uninit(bi * o * l + off, len) }
             });
             return;
         }
         for (oc, &bv) in bias.iter().enumerate() {
             for oy in oys.clone() {
                 // SAFETY: this tile alone writes output rows `oys` of image `bi`.
-                let out = unsafe { dst.slice(bi * o * l + oc * l + oy * wo, wo) };
+                let out = unsafe { dst.slice_uninit(bi * o * l + oc * l + oy * wo, wo) };
                 let src = &buf[oc * m + (oy - oys.start) * wp..][..wo];
-                out.iter_mut().zip(src).for_each(|(d, v)| *d = v + bv);
+                out.iter_mut().zip(src).for_each(|(d, v)| {
+                    d.write(v + bv);
+                });
             }
         }
     };
+    // The padded copy's border is zero from its allocation and never written; its interior is
+    // overwritten in full for each image.
     let image = |bi: usize, padded: &mut Vec<f32>, buf: &mut Vec<f32>| {
-        padded.fill(0.0);
         let img = &x[bi * c * h * w..(bi + 1) * c * h * w];
         for_each_chunk(&mut padded[pad * wp * c..(pad + h) * wp * c], wp * c, |yy, row| {
             for ch in 0..c {
@@ -352,6 +374,10 @@ fn forward_stride1(
         let (mut padded, mut buf) = scratch();
         (0..b).for_each(|bi| image(bi, &mut padded, &mut buf));
     }
+    // SAFETY: the tiles of every image wrote all `O·L` elements of that image: output rows
+    // `oys` of every channel plane per tile (plain), or rows `2·oys.start..2·oys.end` of every
+    // plane of the `O/4` upsampled channels (sub-pixel), and the tiles cover all rows.
+    unsafe { y.set_len(b * o * l) };
     y
 }
 
@@ -375,7 +401,7 @@ fn store_subpixel<'o>(
     bias: &[f32],
     igdn: Option<(&[f32], &[f32])>,
     oys: std::ops::Range<usize>,
-    out: impl Fn(usize, usize) -> &'o mut [f32],
+    out: impl Fn(usize, usize) -> &'o mut [MaybeUninit<f32>],
 ) {
     let n = o / 4;
     let (result, scratch) = buf.split_at_mut(o * m);
@@ -412,8 +438,8 @@ fn store_subpixel<'o>(
                 let at = cc * m + (oy - oys.start) * wp;
                 let (e, o) = (&even[at..][..wo], &odd[at..][..wo]);
                 for ((dst, &a), &b) in row.chunks_exact_mut(2).zip(e).zip(o) {
-                    dst[0] = a;
-                    dst[1] = b;
+                    dst[0].write(a);
+                    dst[1].write(b);
                 }
             }
         }
@@ -439,7 +465,7 @@ pub fn subpixel_igdn_forward(
         bail!("sub-pixel forward: weight {:?}, bias {:?} do not fit input {:?}", weight.dims(), bias.dims(), x.dims());
     }
     let vec = |t: &Tensor| -> Result<Vec<f32>> { t.flatten_all()?.to_vec1::<f32>() };
-    let (xs, wt, bs) = (vec(x)?, vec(weight)?, vec(bias)?);
+    let (wt, bs) = (vec(weight)?, vec(bias)?);
     let params = match igdn {
         Some((beta, gamma)) => {
             let (beta, gamma) = (vec(beta)?, vec(gamma)?);
@@ -453,7 +479,7 @@ pub fn subpixel_igdn_forward(
     let g = Im2Col { k, stride: 1, pad: k / 2 };
     let wm = weight_matrix(&wt, o, c, k);
     let store = Store::Subpixel { igdn: params.as_ref().map(|(b, g)| (b.as_slice(), g.as_slice())) };
-    let y = forward_stride1(&xs, &wm, &bs, [b, c, h, w], o, g, store);
+    let y = with_f32(x, |xs| Ok(forward_stride1(xs, &wm, &bs, [b, c, h, w], o, g, store)))?;
     Tensor::from_vec(y, (b, o / 4, 2 * h, 2 * w), x.device())
 }
 
@@ -498,9 +524,11 @@ impl CustomOp3 for FusedConv {
             let y = forward_stride1(x, &wm, bias, [b, c, h, w], o, g, Store::Plain);
             return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
         }
-        // Start from the bias and accumulate the product onto it.
-        let mut y = vec![0f32; b * o * l];
-        for_each_chunk(&mut y, l, |i, plane| plane.fill(bias[i % o]));
+        // Start from the bias (written once, no clearing first) and accumulate the product onto it.
+        let mut y: Vec<f32> = Vec::with_capacity(b * o * l);
+        for i in 0..b * o {
+            y.resize(y.len() + l, bias[i % o]);
+        }
         let rows_per_tile = tile_rows(wo, kk).min(ho);
         let tiles = ho.div_ceil(rows_per_tile);
         let scratch = || vec![0f32; rows_per_tile * wo * kk];
