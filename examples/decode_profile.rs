@@ -39,9 +39,14 @@ fn main() -> anyhow::Result<()> {
         let t = Instant::now();
         codec.decode(&bytes)?;
         let t_dec = t.elapsed();
-        let t = Instant::now();
-        a.matmul(&a)?;
-        let t_mm = t.elapsed();
+        // The ruler: median of three matmuls (one alone is as noisy as the load).
+        let mut mm = Vec::new();
+        for _ in 0..3 {
+            let t = Instant::now();
+            a.matmul(&a)?;
+            mm.push(t.elapsed());
+        }
+        let t_mm = median(mm);
         if i > 0 {
             whole.push(t_dec);
             ratios.push((dec_flops / t_dec.as_secs_f64()) / (mm_flops / t_mm.as_secs_f64()));
