@@ -262,6 +262,9 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
     let mut losses = Vec::new();
     let t0 = Instant::now();
     let first_step = run.step;
+    // Start of the window the logged speed covers (the steps since the previous log line), so
+    // that a pause (a suspended process, a shared machine) spoils one line, not every later one.
+    let (mut window_t, mut window_step) = (Instant::now(), run.step);
     let mut interrupted = false;
     while run.step < o.steps {
         let paused = o.stop_after.is_some_and(|n| run.step - first_step >= n);
@@ -322,9 +325,11 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         bar.set_position(run.step);
         bar.set_message(format!("loss {:.3}  bpp {:.3}  PSNR {:.2} dB  {:.2} steps/s", a.0, a.1, a.2, rate));
         if !o.progress && (run.step % 50 == 0 || run.step == o.steps) {
+            let recent = (run.step - window_step) as f64 / window_t.elapsed().as_secs_f64().max(1e-9);
+            (window_t, window_step) = (Instant::now(), run.step);
             eprintln!(
                 "step {}/{}  loss {:.4}  bpp {:.4}  PSNR {:.2} dB  {:.3} steps/s",
-                run.step, o.steps, a.0, a.1, a.2, rate
+                run.step, o.steps, a.0, a.1, a.2, recent
             );
         }
         if run.step % o.checkpoint_every == 0 {
