@@ -143,3 +143,22 @@ fn decode_path_of_the_default_synthesis_matches_its_training_path() {
     assert_eq!(fused.dims(), &[1, 3, 48, 80]);
     assert!(rel_err(&fused, &reference) <= 1e-5, "{}", rel_err(&fused, &reference));
 }
+
+#[test]
+fn one_thread_reuses_scratch_across_images_without_stale_values() {
+    // With one thread the fused kernels run a batch's images one after another on the same
+    // scratch (padded copies, patch rows) and write outputs without clearing them first: every
+    // image must still match candle, including the narrow 12-output kernel and both strides.
+    let pool = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
+    let mut rng = ChaCha8Rng::seed_from_u64(9);
+    // (batch, cin, cout, h, w, k, stride)
+    for (b, ci, co, h, w, k, s) in [(3, 5, 8, 11, 9, 3, 1), (3, 16, 12, 10, 13, 3, 1), (3, 3, 8, 15, 17, 5, 2)] {
+        let x = random(&mut rng, &[b, ci, h, w]);
+        let wt = random(&mut rng, &[co, ci, k, k]);
+        let bias = random(&mut rng, &[co]);
+        let theirs =
+            x.conv2d(&wt, k / 2, s, 1, 1).unwrap().broadcast_add(&bias.reshape((1, co, 1, 1)).unwrap()).unwrap();
+        let ours = pool.install(|| conv2d_fused(&x, &wt, &bias, s, k / 2).unwrap());
+        assert!(rel_err(&ours, &theirs) <= 1e-5, "{:?}: {}", (b, ci, co, h, w, k, s), rel_err(&ours, &theirs));
+    }
+}
