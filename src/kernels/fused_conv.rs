@@ -558,7 +558,8 @@ impl CustomOp3 for FusedConv {
                     out.iter_mut().zip(result[ch..].iter().step_by(o)).for_each(|(d, &v)| _ = d.write(v + bv));
                 }
             } else {
-                // SAFETY: as above; `y` holds the bias everywhere (initialised), so accumulating is sound.
+                // SAFETY: tiles write disjoint positions (their own output rows) of each plane; `y`
+                // holds the bias everywhere, so the accumulating product reads initialised memory.
                 unsafe { matmul_shared(n, o, kk, dst, offset, 1, l, true, lhs, rhs) };
             }
         };
