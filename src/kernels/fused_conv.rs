@@ -532,7 +532,10 @@ impl CustomOp3 for FusedConv {
         // each output element written once. For the 3-channel first layer (k²C = 75) that
         // transpose costs more than the repacking it saves, so there the product accumulates
         // straight into the planes, which start from the bias. Measured on the bench's shapes,
-        // alternated: 5×5 64→64 9.5–9.8 → 8.2–8.4 ms; 5×5 3→64 2.9–3.2 → 3.3–3.6 ms.
+        // alternated: 5×5 64→64 9.5–9.8 → 8.2–8.4 ms; 5×5 3→64 2.9–3.2 → 3.3–3.6 ms. The
+        // threshold only separates those two measured depths (Kiln's first layer has 75; its
+        // other stride-2 layers, 5×5 over N ≥ 48 channels, have 1200 or more); depths in
+        // between were not measured.
         let transposed = kk >= 256;
         let scratch = || vec![0f32; rows_per_tile * wo * (kk + if transposed { o } else { 0 })];
         let mut y: Vec<f32> = Vec::with_capacity(b * o * l);
