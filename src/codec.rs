@@ -22,7 +22,8 @@ use crate::image_io::Picture;
 use crate::kernels::{HyperSynthesisFixed, PriorParameters, SimdMode};
 use crate::model::config::{HYPER_STRIDE, LATENT_STRIDE, check_quality};
 use crate::model::gain::GainVectors;
-use crate::model::{ModelFile, hex_prefix};
+use crate::model::{Model, ModelFile, hex_prefix};
+use crate::refine::{RefineConfig, RefineTarget, refine};
 
 /// A model ready to code: its network, fixed-order hyper-synthesis and coding tables.
 #[derive(Debug)]
@@ -32,6 +33,9 @@ pub struct Codec {
     gaussian: TableSet,
     hyper: TableSet,
     simd: SimdMode,
+    refine: RefineConfig,
+    /// The model with constant weights, for refinement (built when refinement is turned on).
+    frozen: Option<Model>,
 }
 
 /// A compressed image and what it cost.
@@ -172,7 +176,30 @@ impl Codec {
         let hyper_fixed = file.model.hyper_synthesis_fixed()?;
         let gaussian = TableSet::new(file.tables.gaussian.clone())?;
         let hyper = TableSet::new(file.tables.hyper.clone())?;
-        Ok(Codec { file, hyper_fixed, gaussian, hyper, simd: SimdMode::from_env() })
+        Ok(Codec {
+            file,
+            hyper_fixed,
+            gaussian,
+            hyper,
+            simd: SimdMode::from_env(),
+            refine: RefineConfig::default(),
+            frozen: None,
+        })
+    }
+
+    /// Makes the encoder refine each tile's latent (see [`crate::refine`]); decoding is unchanged.
+    pub fn with_refinement(mut self, config: RefineConfig) -> Result<Self> {
+        config.validate()?;
+        if config.iterations > 0 && self.frozen.is_none() {
+            self.frozen = Some(self.file.model.frozen()?);
+        }
+        self.refine = config;
+        Ok(self)
+    }
+
+    /// The encoder refinement in use.
+    pub fn refinement(&self) -> RefineConfig {
+        self.refine
     }
 
     /// The model file in use.
@@ -195,12 +222,13 @@ impl Codec {
         check_quality(quality)?;
         container::check_geometry(pic.width, pic.height, pic.channels, 8)?;
         let gains = self.gains(quality)?;
+        let lambda = self.file.model.config.lambda_for_quality(quality)?;
         let (tw, th) = container::choose_tile_size(pic.width, pic.height);
         let mut records = Vec::new();
         let mut streams = Vec::new();
         let (mut ideal_bits, mut ideal_bits_hyper) = (0.0, 0.0);
         for rect in container::tile_grid(pic.width, pic.height, tw, th) {
-            let (rec, s, (bits_z, bits_y)) = self.encode_tile(pic, rect, &gains, layout)?;
+            let (rec, s, (bits_z, bits_y)) = self.encode_tile(pic, rect, &gains, lambda, layout)?;
             records.push(rec);
             streams.push(s);
             ideal_bits += bits_z + bits_y;
@@ -226,14 +254,24 @@ impl Codec {
         pic: &Picture,
         rect: container::Rect,
         gains: &GainVectors,
+        lambda: f64,
         layout: LatentLayout,
     ) -> Result<(TileRecord, TileStreams, (f64, f64))> {
         let model = &self.file.model;
         let multiple = if layout == LatentLayout::Cropped { LATENT_STRIDE } else { HYPER_STRIDE };
-        let y = scale_channels(&model.g_a.forward(&tile_tensor(pic, rect, multiple)?)?, &gains.y)?;
+        let image = tile_tensor(pic, rect, multiple)?;
+        let y = scale_channels(&model.g_a.forward(&image)?, &gains.y)?;
         let (_, m, hy, wy) = y.dims4()?;
         let (_, (hz, wz)) = tile_latent_sizes(rect.2 as usize, rect.3 as usize);
         let z = scale_channels(&model.h_a.forward(&pad_latent(&y, hz, wz)?)?, &gains.z)?;
+        let (y, z) = match (&self.frozen, self.refine.iterations) {
+            (Some(frozen), 1..) => {
+                let target = RefineTarget { image: &image, size: (rect.2 as usize, rect.3 as usize), gains, lambda };
+                let r = refine(frozen, &target, &y, &z, &self.refine)?;
+                (r.y, r.z)
+            }
+            _ => (y, z),
+        };
         let nz = z.dim(1)?;
         let z_hat: Vec<i32> = z.flatten_all()?.to_vec1::<f32>()?.iter().map(|v| v.round() as i32).collect();
         let mut enc_z = SymbolEncoder::new(&self.hyper);

@@ -16,6 +16,7 @@ pub mod image_io;
 pub mod kernels;
 pub mod metrics;
 pub mod model;
+pub mod refine;
 pub mod train;
 
 pub use codec::{Codec, EncodeStats, Encoded};

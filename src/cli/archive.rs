@@ -6,6 +6,8 @@ use clap::{Args, Subcommand};
 use kiln::archive::{self, PackOptions, Shard, Target};
 use kiln::{Codec, ModelFile};
 
+use super::refine_args::RefineArgs;
+
 #[derive(Debug, Args)]
 pub struct PackArgs {
     /// Source tree (never modified).
@@ -24,6 +26,8 @@ pub struct PackArgs {
     /// Model file (default: the embedded model).
     #[arg(long)]
     model: Option<PathBuf>,
+    #[command(flatten)]
+    refine: RefineArgs,
     /// Images in parallel.
     #[arg(long, default_value_t = 2)]
     jobs: usize,
@@ -64,7 +68,7 @@ pub fn pack(a: PackArgs) -> anyhow::Result<()> {
         kiln::model::config::check_quality(q)?;
     }
     let shard = a.shard.as_deref().map(Shard::parse).transpose()?;
-    let codec = codec(a.model.as_deref())?;
+    let codec = a.refine.apply(codec(a.model.as_deref())?)?;
     let o = PackOptions { src: a.src, dest: a.dest.clone(), target, jobs: a.jobs, shard, progress: true };
     let r = archive::pack(&codec, &o)?;
     eprintln!(

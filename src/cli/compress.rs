@@ -2,6 +2,7 @@
 
 use std::path::PathBuf;
 
+use super::refine_args::RefineArgs;
 use anyhow::Context;
 use clap::Args;
 use kiln::image_io::write_atomic;
@@ -23,6 +24,8 @@ pub struct CompressArgs {
     /// Print a JSON object with sizes and bit counts on stdout.
     #[arg(long)]
     stats: bool,
+    #[command(flatten)]
+    refine: RefineArgs,
     /// Drop an alpha channel instead of refusing the image.
     #[arg(long)]
     drop_alpha: bool,
@@ -47,7 +50,7 @@ pub fn compress(a: CompressArgs) -> anyhow::Result<()> {
     kiln::model::config::check_quality(a.quality)?;
     let alpha = if a.drop_alpha { AlphaPolicy::Drop } else { AlphaPolicy::Refuse };
     let pic = Picture::open(&a.input, alpha)?;
-    let codec = Codec::new(ModelFile::load(a.model.as_deref())?)?;
+    let codec = a.refine.apply(Codec::new(ModelFile::load(a.model.as_deref())?)?)?;
     let enc = codec.encode(&pic, a.quality)?;
     let out = a.output.unwrap_or_else(|| a.input.with_extension("kiln"));
     write_atomic(&out, &enc.bytes)?;

@@ -6,6 +6,8 @@ use clap::Args;
 use kiln::eval::{DEFAULT_QUALITIES, EvalOptions, baselines::JPEG_QUALITIES};
 use kiln::{Codec, ModelFile};
 
+use super::refine_args::RefineArgs;
+
 #[derive(Debug, Args)]
 pub struct EvaluateArgs {
     /// Folders of images (searched recursively).
@@ -26,6 +28,8 @@ pub struct EvaluateArgs {
     /// JPEG qualities, comma-separated.
     #[arg(long, value_delimiter = ',')]
     jpeg_qualities: Option<Vec<u8>>,
+    #[command(flatten)]
+    refine: RefineArgs,
     /// Images evaluated in parallel.
     #[arg(long, default_value_t = 2)]
     jobs: usize,
@@ -36,7 +40,7 @@ pub fn evaluate(a: EvaluateArgs) -> anyhow::Result<()> {
     for &q in &qualities {
         kiln::model::config::check_quality(q)?;
     }
-    let codec = Codec::new(ModelFile::load(a.model.as_deref())?)?;
+    let codec = a.refine.apply(Codec::new(ModelFile::load(a.model.as_deref())?)?)?;
     let opts = EvalOptions {
         dirs: a.dirs,
         out: a.out.clone(),

@@ -4,6 +4,7 @@ mod archive;
 mod compress;
 mod evaluate;
 mod inspect;
+mod refine_args;
 mod train;
 
 use std::path::PathBuf;

@@ -195,6 +195,8 @@ pub struct Summary {
     pub png_bpp: f64,
     /// Fingerprint prefix of the model evaluated.
     pub model: String,
+    /// Encoder refinement steps per tile Kiln's files were coded with (0: none).
+    pub refine_iterations: usize,
 }
 
 fn curve(rows: &[&Row]) -> Vec<(f64, f64)> {
@@ -262,6 +264,7 @@ pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model:
         size_vs_png,
         png_bpp,
         model,
+        refine_iterations: 0,
     }
 }
 
@@ -317,7 +320,8 @@ pub fn evaluate(codec: &Codec, reference: Option<&Codec>, o: &EvalOptions) -> Re
     if results.is_empty() {
         return Err(KilnError::InvalidArgument("no image could be evaluated".into()));
     }
-    let summary = summarize(&results, skipped, crate::model::hex_prefix(&codec.model_file().fingerprint, 8));
+    let mut summary = summarize(&results, skipped, crate::model::hex_prefix(&codec.model_file().fingerprint, 8));
+    summary.refine_iterations = codec.refinement().iterations;
     report::write_report(&o.out, &results, &summary)?;
     Ok(summary)
 }

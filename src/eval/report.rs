@@ -129,10 +129,14 @@ pub fn write_report(dir: &Path, results: &[ImageResult], summary: &Summary) -> R
         "<!doctype html><html><head><meta charset=\"utf-8\"><title>Kiln evaluation</title><style>\
 body{{font-family:sans-serif;margin:2em;color:#222}} table{{border-collapse:collapse}} td,th{{border:1px solid #ccc;padding:3px 8px;text-align:right}} \
 .crops img{{image-rendering:pixelated;width:288px;margin-right:6px}} figure{{display:inline-block;margin:0 8px 0 0}}</style></head><body>\
-<h1>Kiln rate–distortion report</h1><p>{} images, model <code>{}</code>. BD-rate of Kiln vs JPEG on the mean curve: <b>{}</b>; BD-PSNR: <b>{}</b>. \
+<h1>Kiln rate–distortion report</h1><p>{} images, model <code>{}</code>{}. BD-rate of Kiln vs JPEG on the mean curve: <b>{}</b>; BD-PSNR: <b>{}</b>. \
 Mean PNG size: {:.3} bpp.{}</p>",
         summary.images,
         summary.model,
+        match summary.refine_iterations {
+            0 => String::new(),
+            n => format!(", encoder refinement {n} steps per tile"),
+        },
         summary.bd_rate_vs_jpeg.map(|v| format!("{:+.1}%", 100.0 * v)).unwrap_or("n/a (ranges do not overlap)".into()),
         summary.bd_psnr_vs_jpeg.map(|v| format!("{v:+.2} dB")).unwrap_or("n/a".into()),
         summary.png_bpp,

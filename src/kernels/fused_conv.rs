@@ -611,9 +611,16 @@ impl CustomOp3 for FusedConv {
         } else {
             None
         };
-        let dw = x.apply_op2_no_bwd(&grad, &FusedConvGradWeight { geometry: self.0 })?;
-        let db = grad.apply_op1_no_bwd(&ChannelSums)?;
-        Ok((dx, Some(dw), Some(db)))
+        // Constant weights (a frozen model, refining a latent): skip their gradients.
+        let (dw, db) = if w.is_variable() || w.track_op() {
+            (
+                Some(x.apply_op2_no_bwd(&grad, &FusedConvGradWeight { geometry: self.0 })?),
+                Some(grad.apply_op1_no_bwd(&ChannelSums)?),
+            )
+        } else {
+            (None, None)
+        };
+        Ok((dx, dw, db))
     }
 }
 

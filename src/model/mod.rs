@@ -113,7 +113,8 @@ pub struct TrainOutput {
     pub bits_z: Tensor,
 }
 
-const LIKELIHOOD_FLOOR: f64 = 1e-9;
+/// The smallest probability a rate term assigns (caps a symbol's cost at about 30 bits).
+pub(crate) const LIKELIHOOD_FLOOR: f64 = 1e-9;
 
 fn std_normal_cdf(t: &Tensor) -> candle_core::Result<Tensor> {
     ((t / std::f64::consts::SQRT_2)?.erf()? + 1.0)? * 0.5
@@ -127,7 +128,8 @@ pub fn gaussian_likelihood(residual: &Tensor, sigma: &Tensor) -> candle_core::Re
     (upper - lower)?.clamp(LIKELIHOOD_FLOOR, 1.0)
 }
 
-fn ste_round(x: &Tensor) -> candle_core::Result<Tensor> {
+/// Rounds in the forward pass and passes gradients straight through.
+pub(crate) fn ste_round(x: &Tensor) -> candle_core::Result<Tensor> {
     x + (x.round()? - x)?.detach()
 }
 
@@ -140,9 +142,24 @@ impl Model {
     }
 
     fn build(config: ModelConfig) -> Result<Self> {
-        config.validate()?;
         let varmap = VarMap::new();
         let vb = VarBuilder::from_varmap(&varmap, DType::F32, &Device::Cpu);
+        Self::build_with(config, vb, varmap)
+    }
+
+    /// A copy whose weights are constants, sharing their memory: gradients flow to the inputs
+    /// only, which is what encoder-side refinement ([`crate::refine`]) needs, and the
+    /// convolutions skip their weight gradients. It has no variables ([`Model::named_vars`] is
+    /// empty), so it cannot be trained or exported.
+    pub fn frozen(&self) -> Result<Self> {
+        let tensors: HashMap<String, Tensor> =
+            self.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().detach())).collect();
+        let vb = VarBuilder::from_tensors(tensors, DType::F32, &Device::Cpu);
+        Self::build_with(self.config.clone(), vb, VarMap::new())
+    }
+
+    fn build_with(config: ModelConfig, vb: VarBuilder, varmap: VarMap) -> Result<Self> {
+        config.validate()?;
         Ok(Model {
             g_a: Analysis::new(&config, vb.pp("g_a"))?,
             h_a: HyperAnalysis::new(&config, vb.pp("h_a"))?,
