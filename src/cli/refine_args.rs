@@ -8,8 +8,8 @@ use kiln::refine::RefineConfig;
 #[derive(Debug, Args)]
 pub struct RefineArgs {
     /// Encoder refinement: gradient steps per tile on the latent (0: off). Fewer bits at the
-    /// same quality for a slower encoder (about 0.5 s per step per megapixel on 2 cores); files
-    /// decode like any other. 100 is what the README's figures use.
+    /// same quality for a slower encoder (about 1 s per step per megapixel on 2 cores); files decode
+    /// like any other. 100 is what the README's figures use; 40 with --refine-lr 0.01 gets most of it.
     #[arg(long, default_value_t = 0)]
     refine: usize,
     /// Step size of the refinement, in quantization steps of the latent.

@@ -287,6 +287,34 @@ fn weight_matrix(w: &[f32], o: usize, c: usize, k: usize) -> Vec<f32> {
     m
 }
 
+/// A stride-1 convolution of `x` `(B, C, H, W)` with weights `wt` `(O, C, k, k)` and `bias`,
+/// as `(B, O, Ho, Wo)` planes: the narrow kernel where it applies, else implicit GEMM.
+fn stride1_planes(x: &[f32], wt: &[f32], bias: &[f32], [b, c, h, w]: [usize; 4], o: usize, g: Im2Col) -> Vec<f32> {
+    let k = g.k;
+    if g.pad == k / 2
+        && let Some(y) = Isa::detect().and_then(|isa| forward_narrow(x, wt, bias, [b, c, h, w], o, k, isa))
+    {
+        return y;
+    }
+    forward_stride1(x, &weight_matrix(wt, o, c, k), bias, [b, c, h, w], o, g, Store::Plain)
+}
+
+/// `W` `(O, C, k, k)` as the weights `(C, O, k, k)` of its adjoint: input and output channels
+/// swapped, taps rotated by 180°. For stride 1 and padding `p`, `dx` is the convolution of `dY`
+/// with these weights and padding `k − 1 − p`.
+fn adjoint_weights(wt: &[f32], o: usize, c: usize, k: usize) -> Vec<f32> {
+    let taps = k * k;
+    let mut f = vec![0f32; wt.len()];
+    for_each_chunk(&mut f, taps, |r, dst| {
+        let (cc, oo) = (r / o, r % o);
+        let src = &wt[(oo * c + cc) * taps..][..taps];
+        for (t, v) in dst.iter_mut().enumerate() {
+            *v = src[taps - 1 - t];
+        }
+    });
+    f
+}
+
 /// Stride-1 forward without patch rows ("implicit GEMM"): on a zero-padded HWC copy of the
 /// image, the input under tap `(ky, kx)` for a run of output positions is itself a matrix with
 /// row stride `C`, if the positions are counted along the padded width (the `2·pad` extra
@@ -513,17 +541,11 @@ impl CustomOp3 for FusedConv {
         let g = self.0;
         let (ho, wo) = g.output_size(h, w);
         let (l, kk) = (ho * wo, k * k * c);
-        if g.stride == 1 && g.pad == k / 2 {
-            let narrow = Isa::detect().and_then(|isa| forward_narrow(x, wt, bias, [b, c, h, w], o, k, isa));
-            if let Some(y) = narrow {
-                return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
-            }
-        }
-        let wm = weight_matrix(wt, o, c, k);
         if g.stride == 1 {
-            let y = forward_stride1(x, &wm, bias, [b, c, h, w], o, g, Store::Plain);
+            let y = stride1_planes(x, wt, bias, [b, c, h, w], o, g);
             return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
         }
+        let wm = weight_matrix(wt, o, c, k);
         let rows_per_tile = tile_rows(wo, kk).min(ho);
         let tiles = ho.div_ceil(rows_per_tile);
         // Deep products (k²C ≥ 256) go through a tile result with the channels innermost: gemm
@@ -642,6 +664,13 @@ impl CustomOp2 for FusedConvGradInput {
         let (_, c, k, _) = l2.shape().dims4()?;
         let (dy, wt) = (contiguous_f32(s1, l1)?, contiguous_f32(s2, l2)?);
         let (g, h, w) = (self.geometry, self.h, self.w);
+        if g.stride == 1 && (ho, wo) == (h, w) && 2 * g.pad == k - 1 {
+            // A stride-1 convolution of dY with the adjoint weights (padding k − 1 − p = p): each
+            // element of dx is written once, and no (positions × k²C) patch-row gradient is built.
+            let zero = vec![0f32; c];
+            let dx = stride1_planes(dy, &adjoint_weights(wt, o, c, k), &zero, [b, o, h, w], c, g);
+            return Ok((CpuStorage::F32(dx), Shape::from((b, c, h, w))));
+        }
         let (l, kk) = (ho * wo, k * k * c);
         let wm = weight_matrix(wt, o, c, k);
         let mut dx = vec![0f32; b * c * h * w];
