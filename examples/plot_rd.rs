@@ -1,7 +1,7 @@
 //! Plots the mean Kiln curves of several `kiln evaluate` runs (bpp vs PSNR) in one figure, with
 //! the first run's JPEG curve and PNG marker, as SVG and PNG: e.g. the same model with and
 //! without encoder refinement.
-//! `cargo run --release --example plot_rd -- docs/default-val-rd-psnr "plain encoder=a/summary.json" "--refine 100=b/summary.json"`
+//! `cargo run --release --example plot_rd -- docs/default-val-rd-psnr "Kiln=a/summary.json" "Kiln refined=b/summary.json"`
 //! writes `docs/default-val-rd-psnr.{svg,png}`.
 
 use kiln::eval::plot::{Plot, Series};
@@ -28,7 +28,7 @@ fn main() -> anyhow::Result<()> {
     for (run, color) in runs.iter().zip(COLORS) {
         let (label, path) = run.split_once('=').ok_or_else(|| anyhow::anyhow!("{run}: expected LABEL=summary.json"))?;
         let summary: serde_json::Value = serde_json::from_str(&std::fs::read_to_string(path)?)?;
-        series.push(Series { label: format!("Kiln, {label}"), color, points: curve(&summary, "kiln")? });
+        series.push(Series { label: label.to_string(), color, points: curve(&summary, "kiln")? });
         first.get_or_insert(summary);
     }
     let first = first.expect("at least one run");

@@ -71,6 +71,12 @@ impl Plot {
         ((0.0, (x1 * 1.05).max(1e-3)), (y0 - pad, y1 + pad))
     }
 
+    /// Left edge of the legend's labels: far enough left for the longest (`width` measures one).
+    fn legend_x(&self, width: impl Fn(&str) -> f64) -> f64 {
+        let widest = self.series.iter().map(|s| width(&s.label)).fold(114.0, f64::max);
+        W - RIGHT - 6.0 - widest
+    }
+
     fn mapper(&self) -> impl Fn(f64, f64) -> (f64, f64) {
         let ((x0, x1), (y0, y1)) = self.ranges();
         move |x, y| {
@@ -148,12 +154,14 @@ impl Plot {
                 s += &format!("<circle cx=\"{a}\" cy=\"{b}\" r=\"3\" fill=\"{c}\"/>\n");
             }
             let ly = legend_y(i, self.series.len());
+            // About 7 px per character at font-size 12.
+            let lx = self.legend_x(|t| 7.0 * t.chars().count() as f64);
             s += &format!(
                 "<line x1=\"{0}\" y1=\"{ly}\" x2=\"{1}\" y2=\"{ly}\" stroke=\"{c}\" stroke-width=\"3\"/>\n",
-                W - RIGHT - 150.0,
-                W - RIGHT - 126.0
+                lx - 30.0,
+                lx - 6.0
             );
-            s += &format!("<text x=\"{}\" y=\"{}\">{}</text>\n", W - RIGHT - 120.0, ly + 4.0, esc(&ser.label));
+            s += &format!("<text x=\"{lx}\" y=\"{}\">{}</text>\n", ly + 4.0, esc(&ser.label));
         }
         if let Some((label, x)) = &self.marker {
             let text = format!("{label}: {x:.2} bpp");
@@ -220,8 +228,9 @@ impl Plot {
                 disc(&mut img, p, 3.0, ser.color);
             }
             let ly = legend_y(i, self.series.len());
-            line(&mut img, (W - RIGHT - 150.0, ly), (W - RIGHT - 126.0, ly), ser.color, 3);
-            text(&mut img, W - RIGHT - 120.0, ly - 7.0, &ser.label, dark);
+            let lx = self.legend_x(|t| text_width(t) as f64);
+            line(&mut img, (lx - 30.0, ly), (lx - 6.0, ly), ser.color, 3);
+            text(&mut img, lx, ly - 7.0, &ser.label, dark);
         }
         if let Some((label, x)) = &self.marker {
             if *x <= x1 {
