@@ -53,6 +53,14 @@ fn compress_then_decompress_with_stats() {
     assert!(o.status.success());
     let info: serde_json::Value = serde_json::from_slice(&o.stdout).unwrap();
     assert_eq!(info["quality"].as_f64().unwrap(), 42.5);
+    // A refined file is an ordinary container: the plain decoder reads it.
+    let refined = tmp.path().join("r.kiln").display().to_string();
+    let o = kiln(&["compress", &img, "-o", &refined, "--quality", "42.5", "--model", &model, "--refine", "3"]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    let png = tmp.path().join("r.png").display().to_string();
+    let o = kiln(&["decompress", &refined, "-o", &png, "--model", &model]);
+    assert!(o.status.success(), "{}", stderr(&o));
+    assert_eq!(image::image_dimensions(&png).unwrap(), (77, 45));
 }
 
 #[test]
@@ -119,6 +127,20 @@ fn bad_inputs_exit_1_with_a_one_line_error_and_no_partial_file() {
             "model mismatch",
         ),
         (vec!["compress".into(), img.clone(), "-o".into(), p("o8.kiln"), "--model".into(), p("text.png")], "bad model"),
+        (
+            vec![
+                "compress".into(),
+                img.clone(),
+                "-o".into(),
+                p("o9.kiln"),
+                "--model".into(),
+                model.clone(),
+                "--refine".into(),
+                "2".into(),
+                "--refine-lr=-1".into(),
+            ],
+            "learning rate",
+        ),
     ];
     for (args, needle) in &cases {
         let args: Vec<&str> = args.iter().map(String::as_str).collect();
