@@ -2,11 +2,12 @@
 
 use std::path::PathBuf;
 
-use super::refine_args::RefineArgs;
 use anyhow::Context;
 use clap::Args;
 use kiln::image_io::write_atomic;
 use kiln::{AlphaPolicy, Codec, KilnError, ModelFile, Picture, PngEffort};
+
+use super::refine_args::RefineArgs;
 
 #[derive(Debug, Args)]
 pub struct CompressArgs {
