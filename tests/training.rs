@@ -37,6 +37,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         clip: 5.0,
         decay_from: 0.8,
         lambdas: None,
+        latent_channels: None,
         distortion: kiln::train::Distortion::Mse,
         stop_after: None,
         balance: 0.0,
@@ -77,7 +78,7 @@ fn tiny_model_trains_exports_and_round_trips() {
 }
 
 #[test]
-fn resuming_continues_exactly_where_the_run_stopped() {
+fn resuming_continues_where_the_run_stopped() {
     let tmp = tempfile::tempdir().unwrap();
     std::fs::create_dir(tmp.path().join("imgs")).unwrap();
     write_images(&tmp.path().join("imgs"));
@@ -98,7 +99,12 @@ fn resuming_continues_exactly_where_the_run_stopped() {
         assert_eq!(na, nb);
         let diff =
             (va.as_tensor() - vb.as_tensor()).unwrap().abs().unwrap().max_all().unwrap().to_scalar::<f32>().unwrap();
-        assert!(diff < 1e-5, "{na} differs by {diff}");
+        // Checkpoints keep Adam's moments in bfloat16 (relative error 2^-8), so the resumed run
+        // is close, not identical: each of the 10 resumed steps (lr 2e-3) can differ by about
+        // lr * 2^-8 = 8e-6 (measured: 6e-5 at most over all weights). A resume that lost the
+        // first moments differs by 2.6e-3 (measured), one that lost the RNG state or the step
+        // count by the order of lr * 10 = 2e-2.
+        assert!(diff < 2e-4, "{na} differs by {diff}");
     }
 }
 
@@ -219,4 +225,33 @@ fn resuming_with_more_anchors_keeps_the_old_ones_and_extends_the_quality_range()
     let codec = Codec::new(after).unwrap();
     let pic = synthetic_picture(128, 128, 3, 5);
     assert!(codec.encode(&pic, 100.0).unwrap().bytes.len() > codec.encode(&pic, 1.0).unwrap().bytes.len());
+}
+
+#[test]
+fn resuming_with_a_wider_latent_grows_it_and_keeps_training() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    write_images(&tmp.path().join("imgs"));
+    let out = tmp.path().join("m.safetensors");
+    let mut o = options(tmp.path(), out.clone(), 10);
+    train(&o).unwrap();
+    let before = ModelFile::load(Some(&out)).unwrap();
+    let m = before.model.config.m + 4;
+    o.steps = 14;
+    o.resume = Some(out.with_extension("ckpt"));
+    o.latent_channels = Some(m);
+    train(&o).unwrap();
+    let after = ModelFile::load(Some(&out)).unwrap();
+    assert_eq!(after.model.config.m, m);
+    assert_eq!(after.training.steps, 14);
+    // A second resume with the same width is a plain resume; a narrower one is refused.
+    o.steps = 16;
+    train(&o).unwrap();
+    o.latent_channels = Some(m - 1);
+    let err = train(&o).unwrap_err();
+    assert!(err.to_string().contains("can only grow"), "{err}");
+    let codec = Codec::new(ModelFile::load(Some(&out)).unwrap()).unwrap();
+    let pic = synthetic_picture(128, 96, 3, 5);
+    let dec = codec.decode(&codec.encode(&pic, 50.0).unwrap().bytes).unwrap();
+    assert_eq!((dec.width, dec.height), (128, 96));
 }

@@ -67,6 +67,10 @@ pub struct TrainArgs {
     /// qualities); quality 1 maps to the first, 100 to the last.
     #[arg(long, value_delimiter = ',')]
     lambdas: Option<Vec<f64>>,
+    /// Latent channels M. For a new model it replaces the configuration's; with --init or
+    /// --resume a smaller latent grows to it, the grown model starting out exactly as the old one.
+    #[arg(long)]
+    latent_channels: Option<usize>,
     /// Weigh each crop's loss by (λ_mid/λ)^BALANCE (λ_mid: geometric mean of the anchors), so
     /// that low qualities get a fair share of the gradient; 0 weighs all crops alike.
     #[arg(long, default_value_t = 0.0)]
@@ -112,6 +116,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         distortion: a.distortion,
         stop_after: a.stop_after,
         lambdas: a.lambdas,
+        latent_channels: a.latent_channels,
         balance: a.balance,
         progress: !a.log,
     };

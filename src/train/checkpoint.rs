@@ -1,9 +1,14 @@
 //! Training checkpoints: weights, optimizer moments, step and RNG state in one safetensors file.
+//!
+//! Weights are kept in f32; optimizer moments (`adam.*`) in bfloat16, which keeps a checkpoint at
+//! two thirds of the size (it is committed, under the repository's 20 MB per commit) at a
+//! relative error of 2⁻⁸ in the moments: a resumed run is not bit-identical to an uninterrupted
+//! one, but follows it closely. Files with f32 moments load as well.
 
 use std::collections::HashMap;
 use std::path::Path;
 
-use candle_core::{Device, Tensor};
+use candle_core::{DType, Device, Tensor};
 use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
@@ -53,7 +58,10 @@ impl CheckpointMeta {
 pub fn save(path: &Path, model: &Model, optimizer: HashMap<String, Tensor>, meta: &CheckpointMeta) -> Result<()> {
     let mut tensors: Vec<(String, Tensor)> =
         model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
-    tensors.extend(optimizer);
+    for (name, t) in optimizer {
+        let t = if name.starts_with("adam.") { t.to_dtype(DType::BF16)? } else { t };
+        tensors.push((name, t));
+    }
     tensors.sort_by(|a, b| a.0.cmp(&b.0));
     let metadata = HashMap::from([
         ("kiln.format".to_string(), CHECKPOINT_FORMAT.to_string()),

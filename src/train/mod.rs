@@ -10,6 +10,7 @@ pub mod checkpoint;
 pub mod data;
 pub mod distortion;
 pub mod optim;
+pub mod widen;
 
 use std::collections::HashMap;
 use std::path::PathBuf;
@@ -83,6 +84,10 @@ pub struct TrainOptions {
     /// `resume` the gain tables are re-targeted to them ([`retarget_rows`]), e.g. to extend a
     /// model's quality range upwards. `None` keeps the model's own.
     pub lambdas: Option<Vec<f64>>,
+    /// Latent channels `M`. For a new model it replaces the configuration's; with `init` or
+    /// `resume` a smaller latent is grown to it ([`widen::widen_latent`]: the grown model starts
+    /// out computing what the old one did). `None` keeps the model's own.
+    pub latent_channels: Option<usize>,
     /// Exponent `α` of the per-crop loss weight `(λ_mid / λ)^α` (`λ_mid`: geometric mean of the
     /// anchors; 0 weighs every crop alike). A crop's loss grows roughly like `√λ`, so with `α = 0`
     /// the high-λ crops dominate every batch's gradient and the low qualities are undertrained;
@@ -167,7 +172,7 @@ fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64
         tensors.insert(name.to_string(), t);
         for moment in [format!("adam.m.{name}"), format!("adam.v.{name}")] {
             let Some(m) = tensors.get(&moment) else { continue };
-            let rows = m.to_vec2::<f32>()?;
+            let rows = m.to_dtype(candle_core::DType::F32)?.to_vec2::<f32>()?;
             let c = rows.first().map_or(0, Vec::len);
             let kept: Vec<f32> = new
                 .iter()
@@ -183,6 +188,12 @@ fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64
 fn start(o: &TrainOptions) -> Result<Run> {
     if let Some(ck) = &o.resume {
         let (mut meta, mut tensors) = checkpoint::load(ck)?;
+        if let Some(m) = o.latent_channels.filter(|&m| m != meta.config.m) {
+            // Moments of the grown tensors no longer fit and restart from zero (`load_state`).
+            tensors.extend(widen::widen_latent(&tensors, &meta.config, m, o.seed)?);
+            eprintln!("latent grown from {} to {m} channels", meta.config.m);
+            meta.config.m = m;
+        }
         if let Some(new) = o.lambdas.as_ref().filter(|l| **l != meta.config.lambdas) {
             retarget_gains(&mut tensors, &meta.config.lambdas, new)?;
             meta.config.lambdas = new.clone();
@@ -200,22 +211,34 @@ fn start(o: &TrainOptions) -> Result<Run> {
             if let Some(l) = &o.lambdas {
                 c.lambdas = l.clone();
             }
+            if let Some(m) = o.latent_channels {
+                c.m = m;
+            }
             (Model::new(c, o.seed)?, None)
         }
         Init::FineTune(p) => {
             let f = ModelFile::load(p.as_deref())?;
             let fingerprint = Some(hex_prefix(&f.fingerprint, 8));
-            match o.lambdas.as_ref().filter(|l| **l != f.model.config.lambdas) {
-                None => (f.model, fingerprint),
-                Some(new) => {
-                    let mut tensors: HashMap<String, Tensor> =
-                        f.model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
-                    retarget_gains(&mut tensors, &f.model.config.lambdas, new)?;
-                    let config = ModelConfig { lambdas: new.clone(), ..f.model.config.clone() };
-                    let model = Model::new(config, o.seed)?;
-                    model.load_weights(&tensors)?;
-                    (model, fingerprint)
+            let new_lambdas = o.lambdas.as_ref().filter(|l| **l != f.model.config.lambdas);
+            let new_m = o.latent_channels.filter(|&m| m != f.model.config.m);
+            if new_lambdas.is_none() && new_m.is_none() {
+                (f.model, fingerprint)
+            } else {
+                let mut config = f.model.config.clone();
+                let mut tensors: HashMap<String, Tensor> =
+                    f.model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
+                if let Some(m) = new_m {
+                    tensors = widen::widen_latent(&tensors, &config, m, o.seed)?;
+                    eprintln!("latent grown from {} to {m} channels", config.m);
+                    config.m = m;
                 }
+                if let Some(new) = new_lambdas {
+                    retarget_gains(&mut tensors, &config.lambdas, new)?;
+                    config.lambdas = new.clone();
+                }
+                let model = Model::new(config, o.seed)?;
+                model.load_weights(&tensors)?;
+                (model, fingerprint)
             }
         }
     };

@@ -39,7 +39,7 @@ pub struct Adam {
 }
 
 fn values(t: &Tensor) -> Result<Vec<f32>> {
-    Ok(t.flatten_all()?.to_vec1::<f32>()?)
+    Ok(t.flatten_all()?.to_dtype(candle_core::DType::F32)?.to_vec1::<f32>()?)
 }
 
 impl Adam {
