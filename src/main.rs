@@ -22,8 +22,10 @@ fn main() -> ExitCode {
     }
     kiln::allocator::keep_freed_memory();
     let args = cli::Cli::parse();
-    if std::env::var("KILN_CONV").is_ok_and(|v| v == "candle") {
-        kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::Candle);
+    match std::env::var("KILN_CONV").as_deref() {
+        Ok("candle") => kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::Candle),
+        Ok("direct") => kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::FastDirect),
+        _ => {}
     }
     match cli::run(args) {
         Ok(()) => ExitCode::SUCCESS,

@@ -32,6 +32,10 @@ fn matches_candle_conv2d_forward_and_gradients() {
         (3, 4, 7, 33, 31, 5, 1),
         // k²C ≥ 256 at stride 2: the product goes through a channels-innermost tile result.
         (2, 12, 10, 15, 13, 5, 2),
+        // 3×3 stride 1 with 16 or more channels each way: Winograd's F(2×2, 3×3), forward and
+        // (adjoint weights) input gradient; odd sizes leave partial 2×2 blocks at the edges.
+        (2, 16, 20, 9, 11, 3, 1),
+        (1, 32, 64, 14, 10, 3, 1),
     ];
     for (b, ci, co, h, w, k, s) in shapes {
         let pad = k / 2;
@@ -154,9 +158,13 @@ fn one_thread_reuses_scratch_across_images_without_stale_values() {
     let pool = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
     let mut rng = ChaCha8Rng::seed_from_u64(9);
     // (batch, cin, cout, h, w, k, stride)
-    for (b, ci, co, h, w, k, s) in
-        [(3, 5, 8, 11, 9, 3, 1), (3, 16, 12, 10, 13, 3, 1), (3, 3, 8, 15, 17, 5, 2), (3, 16, 9, 13, 11, 5, 2)]
-    {
+    for (b, ci, co, h, w, k, s) in [
+        (3, 5, 8, 11, 9, 3, 1),
+        (3, 16, 12, 10, 13, 3, 1),
+        (3, 16, 24, 11, 9, 3, 1),
+        (3, 3, 8, 15, 17, 5, 2),
+        (3, 16, 9, 13, 11, 5, 2),
+    ] {
         let x = random(&mut rng, &[b, ci, h, w]);
         let wt = random(&mut rng, &[co, ci, k, k]);
         let bias = random(&mut rng, &[co]);

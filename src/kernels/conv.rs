@@ -20,29 +20,36 @@ use rayon::prelude::*;
 /// Which implementation the model's convolution layers use.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ConvBackend {
-    /// The fused patch-rows + gemm convolution ([`super::fused_conv`]): the default.
+    /// The fused patch-rows + gemm convolution ([`super::fused_conv`]), 3×3 stride-1 layers by
+    /// Winograd's method ([`super::winograd`]): the default.
     Fast,
+    /// As `Fast`, but 3×3 stride-1 layers as direct implicit GEMM too (for comparison).
+    FastDirect,
     /// candle's built-in `conv2d` (for comparison in benches).
     Candle,
 }
 
 static BACKEND: AtomicU8 = AtomicU8::new(0);
 
-/// Selects the backend for the whole process (`KILN_CONV=candle` in the environment selects
-/// candle's at start-up of the command-line tool).
+/// Selects the backend for the whole process (`KILN_CONV=candle` or `KILN_CONV=direct` in the
+/// environment selects one at start-up of the command-line tool).
 pub fn set_backend(b: ConvBackend) {
-    BACKEND.store(matches!(b, ConvBackend::Candle) as u8, Ordering::Relaxed);
+    BACKEND.store(b as u8, Ordering::Relaxed);
 }
 
 /// The backend in use.
 pub fn backend() -> ConvBackend {
-    if BACKEND.load(Ordering::Relaxed) == 1 { ConvBackend::Candle } else { ConvBackend::Fast }
+    match BACKEND.load(Ordering::Relaxed) {
+        1 => ConvBackend::FastDirect,
+        2 => ConvBackend::Candle,
+        _ => ConvBackend::Fast,
+    }
 }
 
 /// Convolution plus per-channel bias through the selected backend.
 pub fn conv2d_selected(x: &Tensor, weight: &Tensor, bias: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
     match backend() {
-        ConvBackend::Fast => super::fused_conv::conv2d_fused(x, weight, bias, stride, pad),
+        ConvBackend::Fast | ConvBackend::FastDirect => super::fused_conv::conv2d_fused(x, weight, bias, stride, pad),
         ConvBackend::Candle => x.conv2d(weight, pad, stride, 1, 1)?.broadcast_add(&bias.reshape((1, (), 1, 1))?),
     }
 }
