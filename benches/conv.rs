@@ -1,5 +1,5 @@
 //! Convolution at Kiln's shapes: ours (`Fast`: implicit GEMM, Winograd for 3×3 stride 1;
-//! `FastDirect`: without Winograd) vs candle's `conv2d` vs a candle `matmul` of equal FLOPs,
+//! `GemmOnly`: every layer as a gemm) vs candle's `conv2d` vs a candle `matmul` of equal FLOPs,
 //! forward and forward+backward; and one training step with each backend.
 //! Throughput is reported in elements = FLOPs, so criterion's "elem/s" reads as FLOP/s.
 
@@ -42,7 +42,7 @@ fn conv_benches(c: &mut Criterion) {
         let mut g = c.benchmark_group(format!("conv forward {}", s.name));
         g.throughput(Throughput::Elements(flops as u64));
         g.sample_size(10);
-        for be in [ConvBackend::Fast, ConvBackend::FastDirect, ConvBackend::Candle] {
+        for be in [ConvBackend::Fast, ConvBackend::GemmOnly, ConvBackend::Candle] {
             g.bench_function(format!("{be:?}"), |b| {
                 conv::set_backend(be);
                 b.iter(|| {
@@ -55,7 +55,7 @@ fn conv_benches(c: &mut Criterion) {
         let mut g = c.benchmark_group(format!("conv forward+backward {}", s.name));
         g.throughput(Throughput::Elements(3 * flops as u64));
         g.sample_size(10);
-        for be in [ConvBackend::Fast, ConvBackend::FastDirect, ConvBackend::Candle] {
+        for be in [ConvBackend::Fast, ConvBackend::GemmOnly, ConvBackend::Candle] {
             g.bench_function(format!("{be:?}"), |b| {
                 conv::set_backend(be);
                 b.iter(|| {
@@ -82,7 +82,7 @@ fn training_step(c: &mut Criterion) {
     let mut g = c.benchmark_group("training step, shipped config, batch 8 of 128x128");
     g.throughput(Throughput::Elements(b as u64)); // samples/s
     g.sample_size(10);
-    for be in [ConvBackend::Fast, ConvBackend::FastDirect, ConvBackend::Candle] {
+    for be in [ConvBackend::Fast, ConvBackend::GemmOnly, ConvBackend::Candle] {
         g.bench_function(format!("{be:?}"), |bn| {
             conv::set_backend(be);
             bn.iter(|| {

@@ -24,7 +24,7 @@ fn main() -> ExitCode {
     let args = cli::Cli::parse();
     match std::env::var("KILN_CONV").as_deref() {
         Ok("candle") => kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::Candle),
-        Ok("direct") => kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::FastDirect),
+        Ok("gemm") => kiln::kernels::conv::set_backend(kiln::kernels::conv::ConvBackend::GemmOnly),
         _ => {}
     }
     match cli::run(args) {

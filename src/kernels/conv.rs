@@ -21,17 +21,18 @@ use rayon::prelude::*;
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ConvBackend {
     /// The fused patch-rows + gemm convolution ([`super::fused_conv`]), 3×3 stride-1 layers by
-    /// Winograd's method ([`super::winograd`]): the default.
+    /// Winograd's method ([`super::winograd`]) and stride-2 layers over few input channels by
+    /// a vectorized direct kernel ([`super::few_inputs`]): the default.
     Fast,
-    /// As `Fast`, but 3×3 stride-1 layers as direct implicit GEMM too (for comparison).
-    FastDirect,
+    /// As `Fast`, but every layer as a gemm (implicit GEMM or patch rows): for comparison.
+    GemmOnly,
     /// candle's built-in `conv2d` (for comparison in benches).
     Candle,
 }
 
 static BACKEND: AtomicU8 = AtomicU8::new(0);
 
-/// Selects the backend for the whole process (`KILN_CONV=candle` or `KILN_CONV=direct` in the
+/// Selects the backend for the whole process (`KILN_CONV=candle` or `KILN_CONV=gemm` in the
 /// environment selects one at start-up of the command-line tool).
 pub fn set_backend(b: ConvBackend) {
     BACKEND.store(b as u8, Ordering::Relaxed);
@@ -40,7 +41,7 @@ pub fn set_backend(b: ConvBackend) {
 /// The backend in use.
 pub fn backend() -> ConvBackend {
     match BACKEND.load(Ordering::Relaxed) {
-        1 => ConvBackend::FastDirect,
+        1 => ConvBackend::GemmOnly,
         2 => ConvBackend::Candle,
         _ => ConvBackend::Fast,
     }
@@ -49,7 +50,7 @@ pub fn backend() -> ConvBackend {
 /// Convolution plus per-channel bias through the selected backend.
 pub fn conv2d_selected(x: &Tensor, weight: &Tensor, bias: &Tensor, stride: usize, pad: usize) -> Result<Tensor> {
     match backend() {
-        ConvBackend::Fast | ConvBackend::FastDirect => super::fused_conv::conv2d_fused(x, weight, bias, stride, pad),
+        ConvBackend::Fast | ConvBackend::GemmOnly => super::fused_conv::conv2d_fused(x, weight, bias, stride, pad),
         ConvBackend::Candle => x.conv2d(weight, pad, stride, 1, 1)?.broadcast_add(&bias.reshape((1, (), 1, 1))?),
     }
 }

@@ -15,6 +15,7 @@ use gemm::Parallelism;
 use rayon::prelude::*;
 
 use super::conv::{ConvBackend, Im2Col, contiguous_f32, with_f32};
+use super::few_inputs::forward_stride2;
 use super::narrow_conv::{Isa, forward_narrow};
 use super::winograd;
 
@@ -329,7 +330,7 @@ impl Stride1Weights {
     /// 3×3 kernels with padding 1 between channel counts of 16 or more (narrower layers are few
     /// flops and go to the narrow kernel or the plain products), else the implicit GEMM.
     fn prepare(wt: &[f32], o: usize, c: usize, k: usize, pad: usize) -> Self {
-        if k == 3 && pad == 1 && c >= 16 && o >= 16 && winograd_enabled() {
+        if k == 3 && pad == 1 && c >= 16 && o >= 16 && special_kernels() {
             Stride1Weights::Winograd(winograd::transform_weights(wt, o, c))
         } else {
             Stride1Weights::Taps(weight_matrix(wt, o, c, k))
@@ -337,10 +338,10 @@ impl Stride1Weights {
     }
 }
 
-/// Whether 3×3 stride-1 layers use Winograd's method (all backends but
-/// [`ConvBackend::FastDirect`], which is there to compare).
-fn winograd_enabled() -> bool {
-    super::conv::backend() != ConvBackend::FastDirect
+/// Whether layers may use the kernels other than gemm (Winograd's, the few-input kernel): all
+/// backends but [`ConvBackend::GemmOnly`], which is there to compare.
+fn special_kernels() -> bool {
+    super::conv::backend() != ConvBackend::GemmOnly
 }
 
 /// Stride-1 forward without patch rows ("implicit GEMM"): on a zero-padded HWC copy of the
@@ -618,6 +619,12 @@ impl CustomOp3 for FusedConv {
         let (l, kk) = (ho * wo, k * k * c);
         if g.stride == 1 {
             let y = stride1_planes(x, wt, bias, [b, c, h, w], o, g);
+            return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
+        }
+        if g.stride == 2
+            && special_kernels()
+            && let Some(y) = Isa::detect().and_then(|isa| forward_stride2(x, wt, bias, [b, c, h, w], o, k, g.pad, isa))
+        {
             return Ok((CpuStorage::F32(y), Shape::from((b, o, ho, wo))));
         }
         let wm = weight_matrix(wt, o, c, k);

@@ -2,6 +2,7 @@
 //! the fixed-order path ([`fixed`]) that must give the same bits everywhere.
 
 pub mod conv;
+mod few_inputs;
 pub mod fixed;
 pub mod fused_conv;
 pub mod fused_gdn;
