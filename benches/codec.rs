@@ -1,6 +1,7 @@
 //! Encode and decode throughput of the embedded default model at three qualities on a 768×512
 //! photograph, with PNG and JPEG of the same image in the same groups (pixels/s), and candle's
-//! matmul as the ruler for the decoder's GFLOP/s.
+//! matmul as the ruler for the decoder's GFLOP/s; quality 50 also with every convolution as a gemm
+//! (`ConvBackend::GemmOnly`), to show what the Winograd and few-input kernels change.
 
 // The allocator the kiln binary uses, so that timings match it.
 #[global_allocator]
@@ -8,6 +9,7 @@ static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 use criterion::{Criterion, Throughput, criterion_group, criterion_main};
 use kiln::eval::baselines::{decode_jpeg, encode_jpeg};
+use kiln::kernels::conv::{self, ConvBackend};
 use kiln::{AlphaPolicy, Codec, ModelFile, Picture};
 
 /// The 768×512 centre of a validation photograph if fetched (tools/fetch-corpus), else of the
@@ -42,6 +44,12 @@ fn codec_benches(c: &mut Criterion) {
     for q in [10.0, 50.0, 90.0] {
         enc.bench_function(format!("kiln q{q}"), |b| b.iter(|| codec.encode(&pic, q).unwrap()));
     }
+    // The same encode with every convolution as a gemm (no Winograd, no few-input kernel).
+    enc.bench_function("kiln q50 gemm only", |b| {
+        conv::set_backend(ConvBackend::GemmOnly);
+        b.iter(|| codec.encode(&pic, 50.0).unwrap());
+        conv::set_backend(ConvBackend::Fast);
+    });
     enc.bench_function("jpeg q75 4:2:0", |b| b.iter(|| encode_jpeg(&pic.data, pic.width, pic.height, 75).unwrap()));
     enc.bench_function("png best", |b| b.iter(|| pic.to_png().unwrap()));
     enc.finish();
@@ -51,6 +59,13 @@ fn codec_benches(c: &mut Criterion) {
     for q in [10.0, 50.0, 90.0] {
         let bytes = codec.encode(&pic, q).unwrap().bytes;
         dec.bench_function(format!("kiln q{q}"), |b| b.iter(|| codec.decode(&bytes).unwrap()));
+        if q == 50.0 {
+            dec.bench_function("kiln q50 gemm only", |b| {
+                conv::set_backend(ConvBackend::GemmOnly);
+                b.iter(|| codec.decode(&bytes).unwrap());
+                conv::set_backend(ConvBackend::Fast);
+            });
+        }
     }
     let jpeg = encode_jpeg(&pic.data, pic.width, pic.height, 75).unwrap();
     dec.bench_function("jpeg q75 4:2:0", |b| b.iter(|| decode_jpeg(&jpeg, 3).unwrap()));
