@@ -1,5 +1,6 @@
 //! Training end to end on a tiny configuration: loss goes down, export round-trips, resume
-//! continues exactly, and the model's rate estimate matches the coded size.
+//! continues where the run stopped, a resume can widen the latent or add anchors, and the
+//! model's rate estimate matches the coded size.
 
 mod common;
 
@@ -17,6 +18,14 @@ fn write_images(dir: &Path) {
     // Too small and unreadable files are skipped, not fatal.
     std::fs::write(dir.join("small.png"), synthetic_picture(20, 20, 3, 9).to_png().unwrap()).unwrap();
     std::fs::write(dir.join("broken.png"), b"not an image").unwrap();
+}
+
+/// A temporary folder with training images in `imgs/`.
+fn workspace() -> tempfile::TempDir {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
+    write_images(&tmp.path().join("imgs"));
+    tmp
 }
 
 fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
@@ -47,9 +56,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
 
 #[test]
 fn tiny_model_trains_exports_and_round_trips() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
-    write_images(&tmp.path().join("imgs"));
+    let tmp = workspace();
     let out = tmp.path().join("m.safetensors");
     let report = train(&options(tmp.path(), out.clone(), 60)).unwrap();
     assert_eq!(report.steps, 60);
@@ -79,9 +86,7 @@ fn tiny_model_trains_exports_and_round_trips() {
 
 #[test]
 fn resuming_continues_where_the_run_stopped() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
-    write_images(&tmp.path().join("imgs"));
+    let tmp = workspace();
     let straight = tmp.path().join("a.safetensors");
     train(&options(tmp.path(), straight.clone(), 20)).unwrap();
 
@@ -119,9 +124,7 @@ fn training_refuses_a_folder_without_usable_images() {
 
 #[test]
 fn ctrl_c_checkpoints_exports_and_resumes() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
-    write_images(&tmp.path().join("imgs"));
+    let tmp = workspace();
     let out = tmp.path().join("m.safetensors");
     let ckpt = tmp.path().join("m.ckpt");
     let args = |steps: &str| -> Vec<String> {
@@ -184,9 +187,7 @@ fn training_ms_ssim_matches_the_reference_checked_metric() {
 
 #[test]
 fn tiny_model_trains_with_ms_ssim_distortion() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
-    write_images(&tmp.path().join("imgs"));
+    let tmp = workspace();
     let mut o = options(tmp.path(), tmp.path().join("m.safetensors"), 40);
     o.distortion = kiln::train::Distortion::MsSsim;
     let report = train(&o).unwrap();
@@ -200,9 +201,7 @@ fn tiny_model_trains_with_ms_ssim_distortion() {
 
 #[test]
 fn resuming_with_more_anchors_keeps_the_old_ones_and_extends_the_quality_range() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
-    write_images(&tmp.path().join("imgs"));
+    let tmp = workspace();
     let out = tmp.path().join("m.safetensors");
     let mut o = options(tmp.path(), out.clone(), 10);
     train(&o).unwrap();
@@ -229,9 +228,7 @@ fn resuming_with_more_anchors_keeps_the_old_ones_and_extends_the_quality_range()
 
 #[test]
 fn resuming_with_a_wider_latent_grows_it_and_keeps_training() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::create_dir(tmp.path().join("imgs")).unwrap();
-    write_images(&tmp.path().join("imgs"));
+    let tmp = workspace();
     let out = tmp.path().join("m.safetensors");
     let mut o = options(tmp.path(), out.clone(), 10);
     train(&o).unwrap();

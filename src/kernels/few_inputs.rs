@@ -20,6 +20,27 @@ use rayon::prelude::*;
 use super::fused_conv::{SharedDst, nested};
 use super::narrow_conv::Isa;
 
+/// The 32-position block kernel shared with the narrow-output convolution.
+#[cfg(target_arch = "x86_64")]
+use super::narrow_conv::x86::block_avx512;
+
+/// One block: 32 positions × 8 channels into `acc[j·32 + i]` (see `block_avx512`).
+///
+/// # Safety
+/// As `block_avx512`'s: AVX-512F available, every tap's 32 lanes in bounds.
+unsafe fn block(planes: *const f32, p0: usize, taps: &[usize], wg: &[f32], acc: &mut [f32]) {
+    #[cfg(target_arch = "x86_64")]
+    // SAFETY: forwarded from the caller's contract.
+    unsafe {
+        block_avx512::<GROUP>(planes, p0, taps, wg, acc)
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        let _ = (planes, p0, taps, wg, acc);
+        unreachable!("no AVX-512 kernel on this architecture");
+    }
+}
+
 /// Output positions per block (two 16-lane vectors).
 const BLOCK: usize = 32;
 /// Output channels per block (16 accumulators with the two vectors).
@@ -92,20 +113,28 @@ pub(crate) fn forward_stride2(
     // Every output element is written once by the blocks below, so `y` starts uninitialised.
     let mut y: Vec<f32> = Vec::with_capacity(b * o * l);
     let dst = SharedDst::new_uninit(&mut y.spare_capacity_mut()[..b * o * l]);
+    // Offset of each (input channel, ky, kx) tap's run from a block's start, in weight order.
+    let taps: Vec<usize> = (0..c * k * k)
+        .map(|t| {
+            let (ci, ky, kx) = (t / (k * k), t % (k * k) / k, t % k);
+            (ci * 2 + kx % 2) * plane + ky * wq + kx / 2
+        })
+        .collect();
     // One task: output rows `rows` of image `bi`, all channels.
     let task = |bi: usize, rows: std::ops::Range<usize>| {
         let img = &planes[bi * image_len..(bi + 1) * image_len];
-        let mut acc = [0f32; GROUP * BLOCK];
+        let mut acc = vec![0f32; GROUP * BLOCK];
         for oy in rows {
             for g in 0..groups {
                 let wg = &wk[g * c * k * k * GROUP..(g + 1) * c * k * k * GROUP];
                 for ox in (0..wo).step_by(BLOCK) {
                     let last = ((c - 1) * 2 + 1) * plane + (2 * oy + k - 1) * wq + ox + k / 2 + BLOCK;
                     assert!(last <= img.len(), "few-input conv: read past the padded image");
+                    let p0 = 2 * oy * wq + ox;
                     // SAFETY: AVX-512F was detected (`isa`); the assertion bounds the last
                     // element read (channel c − 1, odd plane, row 2·oy + k − 1, lane 31 of the
                     // largest tap offset), and `wg` holds c·k²·8 weights.
-                    unsafe { x86::block(img.as_ptr(), plane, wq, c, k, wg, 2 * oy * wq + ox, &mut acc) };
+                    unsafe { block(img.as_ptr(), p0, &taps, wg, &mut acc) };
                     let n = BLOCK.min(wo - ox);
                     for j in 0..GROUP {
                         let oc = g * GROUP + j;
@@ -131,81 +160,4 @@ pub(crate) fn forward_stride2(
     // (`ox` in steps of 32, the last `wo − ox` wide) write every position of every channel.
     unsafe { y.set_len(b * o * l) };
     Some(y)
-}
-
-#[cfg(target_arch = "x86_64")]
-mod x86 {
-    use std::arch::x86_64::*;
-
-    use super::{BLOCK, GROUP};
-
-    /// 32 positions × 8 channels into `acc[j·32 + i]`, positions starting at `p0` (row offset
-    /// plus column) in each parity plane.
-    ///
-    /// # Safety
-    /// AVX-512F available; every element `planes[(ci·2 + kx mod 2)·plane + p0 + ky·wq +
-    /// ⌊kx/2⌋ + lane]` (lane < 32) in bounds; `wg` holds `c·k²·8` weights.
-    #[target_feature(enable = "avx512f")]
-    #[allow(clippy::too_many_arguments)]
-    pub(super) unsafe fn block(
-        planes: *const f32,
-        plane: usize,
-        wq: usize,
-        c: usize,
-        k: usize,
-        wg: &[f32],
-        p0: usize,
-        acc: &mut [f32; GROUP * BLOCK],
-    ) {
-        assert!(wg.len() >= c * k * k * GROUP);
-        let mut a0 = [_mm512_setzero_ps(); GROUP];
-        let mut a1 = [_mm512_setzero_ps(); GROUP];
-        let mut wrow = wg.as_ptr();
-        for ci in 0..c {
-            for ky in 0..k {
-                for kx in 0..k {
-                    // SAFETY: reads in bounds by the caller's contract; `wrow` walks `wg` in
-                    // steps of 8, c·k² times (asserted length).
-                    unsafe {
-                        let src = planes.add((ci * 2 + kx % 2) * plane + p0 + ky * wq + kx / 2);
-                        let v0 = _mm512_loadu_ps(src);
-                        let v1 = _mm512_loadu_ps(src.add(16));
-                        for j in 0..GROUP {
-                            let wv = _mm512_set1_ps(*wrow.add(j));
-                            a0[j] = _mm512_fmadd_ps(wv, v0, a0[j]);
-                            a1[j] = _mm512_fmadd_ps(wv, v1, a1[j]);
-                        }
-                        wrow = wrow.add(GROUP);
-                    }
-                }
-            }
-        }
-        for j in 0..GROUP {
-            // SAFETY: acc holds 8·32 floats.
-            unsafe {
-                _mm512_storeu_ps(acc.as_mut_ptr().add(j * BLOCK), a0[j]);
-                _mm512_storeu_ps(acc.as_mut_ptr().add(j * BLOCK + 16), a1[j]);
-            }
-        }
-    }
-}
-
-#[cfg(not(target_arch = "x86_64"))]
-mod x86 {
-    use super::{BLOCK, GROUP};
-
-    /// Never called: [`super::Isa::detect`] finds no AVX-512 off x86-64.
-    #[allow(clippy::too_many_arguments)]
-    pub(super) unsafe fn block(
-        _: *const f32,
-        _: usize,
-        _: usize,
-        _: usize,
-        _: usize,
-        _: &[f32],
-        _: usize,
-        _: &mut [f32; GROUP * BLOCK],
-    ) {
-        unreachable!("no AVX-512 kernel on this architecture")
-    }
 }

@@ -126,6 +126,9 @@ pub(crate) fn forward_narrow(
         // slack cover all `len` elements, each written above.
         unsafe { padded.set_len(len) };
     };
+    // Offset of each (input channel, ky, kx) tap's run from a block's start, in weight order.
+    let taps: Vec<usize> =
+        (0..c * k * k).map(|t| (t / (k * k)) * cstride + (t % (k * k) / k) * rstride + t % k).collect();
     // Output rows `rows` of image `bi` from its padded rows.
     let rows_task = |padded: &[f32], bi: usize, rows: std::ops::Range<usize>| {
         let mut acc = vec![0f32; o * block];
@@ -136,7 +139,7 @@ pub(crate) fn forward_narrow(
                 assert!((c - 1) * cstride + p0 + (k - 1) * (rstride + 1) + block <= padded.len());
                 // SAFETY: the assertion bounds every read: channel `c − 1`, tap (k−1, k−1),
                 // lane `block − 1` is the last element touched; the CPU feature was detected.
-                unsafe { run_block(isa, o, padded.as_ptr(), cstride, c, k, rstride, &wk, p0, &mut acc) };
+                unsafe { run_block(isa, o, padded.as_ptr(), p0, &taps, &wk, &mut acc) };
                 let n = block.min(w - ox);
                 for (oc, &bv) in bias.iter().enumerate() {
                     // SAFETY: this task alone writes output rows `rows` of image `bi`.
@@ -170,33 +173,20 @@ pub(crate) fn forward_narrow(
 ///
 /// # Safety
 /// `isa` must be supported by the CPU, `o` one of [`NARROW_OUTPUTS`], and every element read
-/// (`planes[ci·plane + p0 + ky·wp + kx + lane]`, lane < block; `plane` is the channel stride and
-/// `wp` the row stride of the padded input) in bounds.
-#[allow(clippy::too_many_arguments)]
-unsafe fn run_block(
-    isa: Isa,
-    o: usize,
-    planes: *const f32,
-    plane: usize,
-    c: usize,
-    k: usize,
-    wp: usize,
-    wk: &[f32],
-    p0: usize,
-    acc: &mut [f32],
-) {
+/// (`planes[p0 + taps[t] + lane]`, lane < block, one `t` per input channel and tap) in bounds.
+unsafe fn run_block(isa: Isa, o: usize, planes: *const f32, p0: usize, taps: &[usize], wk: &[f32], acc: &mut [f32]) {
     #[cfg(target_arch = "x86_64")]
     // SAFETY: forwarded from the caller's contract.
     unsafe {
         match (isa, o) {
-            (Isa::Avx512, 12) => x86::block_avx512::<12>(planes, plane, c, k, wp, wk, p0, acc),
-            (Isa::Avx2, 12) => x86::block_avx2::<12>(planes, plane, c, k, wp, wk, p0, acc),
+            (Isa::Avx512, 12) => x86::block_avx512::<12>(planes, p0, taps, wk, acc),
+            (Isa::Avx2, 12) => x86::block_avx2::<12>(planes, p0, taps, wk, acc),
             _ => unreachable!("no narrow kernel for {o} outputs"),
         }
     }
     #[cfg(not(target_arch = "x86_64"))]
     {
-        let _ = (isa, o, planes, plane, c, k, wp, wk, p0, acc);
+        let _ = (isa, o, planes, p0, taps, wk, acc);
         unreachable!("no narrow kernels on this architecture");
     }
 }
@@ -205,45 +195,37 @@ unsafe fn run_block(
 // output channel vs one 8-lane vector): written out with intrinsics, not left to the
 // autovectorizer, because the accumulators must stay in registers across the whole C·k² loop.
 #[cfg(target_arch = "x86_64")]
-mod x86 {
+pub(crate) mod x86 {
     use std::arch::x86_64::*;
 
-    /// 32 positions × `O` channels: `acc[oc·32 + i]`.
+    /// 32 positions × `O` channels: `acc[oc·32 + i]`, over the input runs at `planes + p0 +
+    /// taps[t]`, one per input channel and tap, with weights `wk` as `[t][O]`. Also the
+    /// few-input stride-2 kernel's block, with its own tap offsets.
     ///
     /// # Safety
-    /// AVX-512F available; reads in bounds (see `run_block`); `wk` holds `c·k²·O` weights.
+    /// AVX-512F available; `planes + p0 + taps[t] + lane` in bounds for lane < 32 and every `t`;
+    /// `wk` holds `taps.len()·O` weights.
     #[target_feature(enable = "avx512f")]
-    #[allow(clippy::too_many_arguments)]
-    pub(super) unsafe fn block_avx512<const O: usize>(
+    pub(crate) unsafe fn block_avx512<const O: usize>(
         planes: *const f32,
-        plane: usize,
-        c: usize,
-        k: usize,
-        wp: usize,
-        wk: &[f32],
         p0: usize,
+        taps: &[usize],
+        wk: &[f32],
         acc: &mut [f32],
     ) {
-        assert!(wk.len() >= c * k * k * O && acc.len() >= 32 * O);
+        assert!(wk.len() >= taps.len() * O && acc.len() >= 32 * O);
         let mut a0 = [_mm512_setzero_ps(); O];
         let mut a1 = [_mm512_setzero_ps(); O];
-        let mut wrow = wk.as_ptr();
-        for ci in 0..c {
-            for ky in 0..k {
-                for kx in 0..k {
-                    // SAFETY: in bounds by the caller's contract; `wrow` walks `wk` in steps
-                    // of O, c·k² times (asserted length).
-                    unsafe {
-                        let src = planes.add(ci * plane + p0 + ky * wp + kx);
-                        let v0 = _mm512_loadu_ps(src);
-                        let v1 = _mm512_loadu_ps(src.add(16));
-                        for oc in 0..O {
-                            let wv = _mm512_set1_ps(*wrow.add(oc));
-                            a0[oc] = _mm512_fmadd_ps(wv, v0, a0[oc]);
-                            a1[oc] = _mm512_fmadd_ps(wv, v1, a1[oc]);
-                        }
-                        wrow = wrow.add(O);
-                    }
+        for (&tap, wrow) in taps.iter().zip(wk.chunks_exact(O)) {
+            // SAFETY: in bounds by the caller's contract.
+            unsafe {
+                let src = planes.add(p0 + tap);
+                let v0 = _mm512_loadu_ps(src);
+                let v1 = _mm512_loadu_ps(src.add(16));
+                for oc in 0..O {
+                    let wv = _mm512_set1_ps(wrow[oc]);
+                    a0[oc] = _mm512_fmadd_ps(wv, v0, a0[oc]);
+                    a1[oc] = _mm512_fmadd_ps(wv, v1, a1[oc]);
                 }
             }
         }
@@ -256,36 +238,27 @@ mod x86 {
         }
     }
 
-    /// 8 positions × `O` channels: `acc[oc·8 + i]`.
+    /// 8 positions × `O` channels: `acc[oc·8 + i]`, over the runs at `planes + p0 + taps[t]`.
     ///
     /// # Safety
-    /// AVX2 and FMA available; reads in bounds (see `run_block`); `wk` holds `c·k²·O` weights.
+    /// AVX2 and FMA available; reads in bounds (see `run_block`); `wk` holds `taps.len()·O`
+    /// weights.
     #[target_feature(enable = "avx2,fma")]
-    #[allow(clippy::too_many_arguments)]
     pub(super) unsafe fn block_avx2<const O: usize>(
         planes: *const f32,
-        plane: usize,
-        c: usize,
-        k: usize,
-        wp: usize,
-        wk: &[f32],
         p0: usize,
+        taps: &[usize],
+        wk: &[f32],
         acc: &mut [f32],
     ) {
-        assert!(wk.len() >= c * k * k * O && acc.len() >= 8 * O);
+        assert!(wk.len() >= taps.len() * O && acc.len() >= 8 * O);
         let mut a = [_mm256_setzero_ps(); O];
-        let mut wrow = wk.as_ptr();
-        for ci in 0..c {
-            for ky in 0..k {
-                for kx in 0..k {
-                    // SAFETY: as in `block_avx512`.
-                    unsafe {
-                        let v = _mm256_loadu_ps(planes.add(ci * plane + p0 + ky * wp + kx));
-                        for (oc, a) in a.iter_mut().enumerate() {
-                            *a = _mm256_fmadd_ps(_mm256_set1_ps(*wrow.add(oc)), v, *a);
-                        }
-                        wrow = wrow.add(O);
-                    }
+        for (&tap, wrow) in taps.iter().zip(wk.chunks_exact(O)) {
+            // SAFETY: as in `block_avx512`.
+            unsafe {
+                let v = _mm256_loadu_ps(planes.add(p0 + tap));
+                for (oc, a) in a.iter_mut().enumerate() {
+                    *a = _mm256_fmadd_ps(_mm256_set1_ps(wrow[oc]), v, *a);
                 }
             }
         }
