@@ -185,19 +185,29 @@ fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64
     Ok(())
 }
 
+/// Applies `o.latent_channels` (growing the latent) and `o.lambdas` (re-targeting the gain
+/// tables) to a model's `tensors` and `config`; whether anything changed. Adam moments of
+/// grown tensors no longer fit and restart from zero ([`Adam::load_state`]).
+fn adapt(tensors: &mut HashMap<String, Tensor>, config: &mut ModelConfig, o: &TrainOptions) -> Result<bool> {
+    let mut changed = false;
+    if let Some(m) = o.latent_channels.filter(|&m| m != config.m) {
+        tensors.extend(widen::widen_latent(tensors, config, m, o.seed)?);
+        eprintln!("latent grown from {} to {m} channels", config.m);
+        config.m = m;
+        changed = true;
+    }
+    if let Some(new) = o.lambdas.as_ref().filter(|l| **l != config.lambdas) {
+        retarget_gains(tensors, &config.lambdas, new)?;
+        config.lambdas = new.clone();
+        changed = true;
+    }
+    Ok(changed)
+}
+
 fn start(o: &TrainOptions) -> Result<Run> {
     if let Some(ck) = &o.resume {
         let (mut meta, mut tensors) = checkpoint::load(ck)?;
-        if let Some(m) = o.latent_channels.filter(|&m| m != meta.config.m) {
-            // Moments of the grown tensors no longer fit and restart from zero (`load_state`).
-            tensors.extend(widen::widen_latent(&tensors, &meta.config, m, o.seed)?);
-            eprintln!("latent grown from {} to {m} channels", meta.config.m);
-            meta.config.m = m;
-        }
-        if let Some(new) = o.lambdas.as_ref().filter(|l| **l != meta.config.lambdas) {
-            retarget_gains(&mut tensors, &meta.config.lambdas, new)?;
-            meta.config.lambdas = new.clone();
-        }
+        adapt(&mut tensors, &mut meta.config, o)?;
         let model = Model::new(meta.config.clone(), o.seed)?;
         model.load_weights(&tensors)?;
         let mut adam = Adam::new(model.named_vars(), AdamConfig::default())?;
@@ -219,26 +229,15 @@ fn start(o: &TrainOptions) -> Result<Run> {
         Init::FineTune(p) => {
             let f = ModelFile::load(p.as_deref())?;
             let fingerprint = Some(hex_prefix(&f.fingerprint, 8));
-            let new_lambdas = o.lambdas.as_ref().filter(|l| **l != f.model.config.lambdas);
-            let new_m = o.latent_channels.filter(|&m| m != f.model.config.m);
-            if new_lambdas.is_none() && new_m.is_none() {
-                (f.model, fingerprint)
-            } else {
-                let mut config = f.model.config.clone();
-                let mut tensors: HashMap<String, Tensor> =
-                    f.model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
-                if let Some(m) = new_m {
-                    tensors = widen::widen_latent(&tensors, &config, m, o.seed)?;
-                    eprintln!("latent grown from {} to {m} channels", config.m);
-                    config.m = m;
-                }
-                if let Some(new) = new_lambdas {
-                    retarget_gains(&mut tensors, &config.lambdas, new)?;
-                    config.lambdas = new.clone();
-                }
+            let mut config = f.model.config.clone();
+            let mut tensors: HashMap<String, Tensor> =
+                f.model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
+            if adapt(&mut tensors, &mut config, o)? {
                 let model = Model::new(config, o.seed)?;
                 model.load_weights(&tensors)?;
                 (model, fingerprint)
+            } else {
+                (f.model, fingerprint)
             }
         }
     };
