@@ -365,9 +365,9 @@ fn forward_stride1(
     // Tiles of output rows whose input run and result (m × (C + O) floats) fill about 1 MiB;
     // for Winograd, whose transformed blocks and products (16 · blocks · (C + O) floats) fill
     // about 1.5 MiB (below a core's 2 MiB L2 on this machine), in an even number of rows (2×2
-    // blocks). Measured on the 3×3 64→256 layer at 32×32 (16
-    // blocks per row pair), alternated: 2 rows 18.1 ms, 4 rows 15.0, 8 rows 10.9, 16 rows 11.6,
-    // 24 rows (the plain tiles' height there) 13.3.
+    // blocks). Measured on the 3×3 64→256 layer at 32×32 (16 blocks per row pair), batch 8, one
+    // sitting: 2 rows 18.1 ms, 4 rows 15.0, 8 rows 10.9 (what this rule gives there), 16 rows
+    // 11.6, 24 rows (the plain tiles' height there) 13.3.
     let rows_per_tile = match weights {
         Stride1Weights::Taps(_) => ((1 << 20) / ((c + o) * 4 * wp)).clamp(1, ho.max(1)),
         Stride1Weights::Winograd(_) => {
@@ -471,8 +471,11 @@ thread_local! {
 }
 
 /// `f` on `len` floats of this thread's scratch. Their values are left over from earlier calls
-/// (zero the first time): callers write every element before they read it. A nested call on the
-/// same thread (a rayon worker that picked up another tile while waiting) gets a fresh buffer.
+/// (zero the first time), so no stale value may reach an output: the stride-1 forward stores
+/// only elements its tile wrote (the sub-pixel store also normalises the positions between rows,
+/// computed from whatever is there and dropped; the inverse GDN mixes channels, never
+/// positions). A nested call on the same thread (a rayon worker that picked up another tile while
+/// waiting) gets a fresh buffer.
 fn with_scratch<R>(len: usize, f: impl FnOnce(&mut [f32]) -> R) -> R {
     SCRATCH.with(|cell| match cell.try_borrow_mut() {
         Ok(mut v) => {

@@ -9,7 +9,7 @@ pub mod fused_gdn;
 mod hyper_fixed;
 mod narrow_conv;
 pub mod pixel_shuffle;
-pub mod winograd;
+mod winograd;
 
 pub use fixed::{FixedConv, SimdMode};
 pub use hyper_fixed::{HyperSynthesisFixed, PriorParameters};

@@ -15,10 +15,6 @@
 
 use super::fused_conv::{View, matmul};
 
-/// Multiply-adds per output position of the sixteen products, per channel pair (the direct
-/// convolution's: 9).
-pub const MACS_PER_OUTPUT: f64 = 4.0;
-
 /// Weights `(O, C, 3, 3)` transformed to `V` `(16, C, O)`: `V_ξ[c][o] = (G g_oc Gᵀ)_ξ` with
 /// `G = [[1, 0, 0], [½, ½, ½], [½, −½, ½], [0, 0, 1]]`.
 pub(crate) fn transform_weights(wt: &[f32], o: usize, c: usize) -> Vec<f32> {
@@ -128,10 +124,9 @@ pub(crate) fn tile(
         let rhs = View { data: &v[xi * c * o..(xi + 1) * c * o], rs: o, cs: 1 };
         matmul(t, o, c, &mut prod[xi * t * o..(xi + 1) * t * o], 1, t, false, lhs, rhs);
     }
-    // Y = Aᵀ M A, Aᵀ = [[1, 1, 1, 0], [0, 1, −1, −1]], one row of blocks at a time: every
-    // operand is a run of consecutive blocks.
+    // Y = Aᵀ M A, Aᵀ = [[1, 1, 1, 0], [0, 1, −1, −1]], per channel: Aᵀ M (two rows of four) and
+    // then the four outputs, each step a run over all blocks.
     let full = wo / 2; // blocks whose two columns are both inside the output
-    // Per channel: Aᵀ M (two rows of four) and then the four outputs, as runs over all blocks.
     let mut sv = vec![0f32; 12 * t];
     for oc in 0..o {
         let e = |xi: usize| &prod[(xi * o + oc) * t..][..t];
