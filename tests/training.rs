@@ -7,6 +7,7 @@ mod common;
 use std::path::{Path, PathBuf};
 
 use common::synthetic_picture;
+use kiln::train::checkpoint::{self, LatentWarmup};
 use kiln::train::{Init, TrainOptions, train};
 use kiln::{Codec, ModelConfig, ModelFile};
 
@@ -50,6 +51,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         distortion: kiln::train::Distortion::Mse,
         stop_after: None,
         balance: 0.0,
+        latent_warmup: 0,
         progress: false,
     }
 }
@@ -237,13 +239,19 @@ fn resuming_with_a_wider_latent_grows_it_and_keeps_training() {
     o.steps = 14;
     o.resume = Some(out.with_extension("ckpt"));
     o.latent_channels = Some(m);
+    o.latent_warmup = 100;
     train(&o).unwrap();
     let after = ModelFile::load(Some(&out)).unwrap();
     assert_eq!(after.model.config.m, m);
     assert_eq!(after.training.steps, 14);
-    // A second resume with the same width is a plain resume; a narrower one is refused.
+    // The new channels' rate warm-up starts at the growth and is kept in the checkpoint.
+    let warmup = Some(LatentWarmup { first_channel: m - 4, from: 10, steps: 100 });
+    assert_eq!(checkpoint::load(&out.with_extension("ckpt")).unwrap().0.latent_warmup, warmup);
+    // A second resume with the same width is a plain resume that continues the warm-up; a
+    // narrower one is refused.
     o.steps = 16;
     train(&o).unwrap();
+    assert_eq!(checkpoint::load(&out.with_extension("ckpt")).unwrap().0.latent_warmup, warmup);
     o.latent_channels = Some(m - 1);
     let err = train(&o).unwrap_err();
     assert!(err.to_string().contains("can only grow"), "{err}");

@@ -75,6 +75,11 @@ pub struct TrainArgs {
     /// that low qualities get a fair share of the gradient; 0 weighs all crops alike.
     #[arg(long, default_value_t = 0.0)]
     balance: f64,
+    /// With --latent-channels: phase the new channels' bits into the loss over this many steps
+    /// (rising linearly from 0), so that the synthesis learns to use them before the rate pulls
+    /// them to zero; 0 counts them fully at once.
+    #[arg(long, default_value_t = 0, value_name = "STEPS")]
+    latent_warmup: u64,
     /// Print plain log lines instead of a progress bar.
     #[arg(long)]
     log: bool,
@@ -118,6 +123,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         lambdas: a.lambdas,
         latent_channels: a.latent_channels,
         balance: a.balance,
+        latent_warmup: a.latent_warmup,
         progress: !a.log,
     };
     kiln::train::train(&opts)?;

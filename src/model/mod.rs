@@ -109,6 +109,8 @@ pub struct TrainOutput {
     pub x_hat: Tensor,
     /// Bits of the latents, per sample `(B,)`.
     pub bits_y: Tensor,
+    /// Bits of the latents per sample and channel `(B, M)` (summing to `bits_y`).
+    pub bits_y_channels: Tensor,
     /// Bits of the hyper-latents, per sample `(B,)`.
     pub bits_z: Tensor,
 }
@@ -226,7 +228,9 @@ impl Model {
             let b = lik.dim(0)?;
             lik.log()?.reshape((b, ()))?.sum(1)? * (-1.0 / std::f64::consts::LN_2)
         };
-        Ok(TrainOutput { x_hat, bits_y: bits(&lik_y)?, bits_z: bits(&lik_z)? })
+        let (b, m) = (lik_y.dim(0)?, lik_y.dim(1)?);
+        let bits_y_channels = (lik_y.log()?.reshape((b, m, ()))?.sum(2)? * (-1.0 / std::f64::consts::LN_2))?;
+        Ok(TrainOutput { x_hat, bits_y: bits_y_channels.sum(1)?, bits_y_channels, bits_z: bits(&lik_z)? })
     }
 
     /// The fixed-order hyper-synthesis built from this model's `h_s` weights.

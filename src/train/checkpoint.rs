@@ -36,6 +36,29 @@ pub struct CheckpointMeta {
     pub init: Option<String>,
     /// Moving averages `(loss, bpp, psnr)`.
     pub averages: Option<(f64, f64, f64)>,
+    /// The rate warm-up of latent channels added by growing the latent, while it lasts.
+    #[serde(default)]
+    pub latent_warmup: Option<LatentWarmup>,
+}
+
+/// Rate warm-up of grown latent channels: their bits count in the training loss with a weight
+/// rising linearly from 0 at step `from` to 1 at step `from + steps`, so that the synthesis
+/// learns to use them before the rate pulls them to zero.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct LatentWarmup {
+    /// First grown channel (the latent's width before growing).
+    pub first_channel: usize,
+    /// Step at which the latent was grown.
+    pub from: u64,
+    /// Length of the ramp in steps.
+    pub steps: u64,
+}
+
+impl LatentWarmup {
+    /// Weight of the grown channels' bits at `step`: 0 at `from`, 1 from `from + steps` on.
+    pub fn weight(&self, step: u64) -> f64 {
+        if self.steps == 0 { 1.0 } else { (step.saturating_sub(self.from) as f64 / self.steps as f64).min(1.0) }
+    }
 }
 
 impl CheckpointMeta {
@@ -84,4 +107,19 @@ pub fn load(path: &Path) -> Result<(CheckpointMeta, HashMap<String, Tensor>)> {
     let m: CheckpointMeta = serde_json::from_str(meta.get("kiln.checkpoint").map(String::as_str).unwrap_or(""))
         .map_err(|e| bad(e.to_string()))?;
     Ok((m, candle_core::safetensors::load_buffer(&bytes, &Device::Cpu)?))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn latent_warmup_rises_linearly_from_its_start() {
+        let w = LatentWarmup { first_channel: 96, from: 1000, steps: 400 };
+        assert_eq!(
+            [w.weight(900), w.weight(1000), w.weight(1100), w.weight(1400), w.weight(5000)],
+            [0.0, 0.0, 0.25, 1.0, 1.0]
+        );
+        assert_eq!(LatentWarmup { steps: 0, ..w }.weight(1000), 1.0);
+    }
 }

@@ -28,7 +28,7 @@ use crate::metrics::psnr;
 use crate::model::config::HYPER_STRIDE;
 use crate::model::gain::{GAIN_TABLES, retarget_rows};
 use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix};
-use checkpoint::CheckpointMeta;
+use checkpoint::{CheckpointMeta, LatentWarmup};
 use data::ImageSet;
 pub use distortion::Distortion;
 use optim::{Adam, AdamConfig};
@@ -88,6 +88,9 @@ pub struct TrainOptions {
     /// `resume` a smaller latent is grown to it ([`widen::widen_latent`]: the grown model starts
     /// out computing what the old one did). `None` keeps the model's own.
     pub latent_channels: Option<usize>,
+    /// Steps over which a grown latent's new channels' bits are phased into the loss
+    /// ([`LatentWarmup`]); 0 counts them fully from the start.
+    pub latent_warmup: u64,
     /// Exponent `α` of the per-crop loss weight `(λ_mid / λ)^α` (`λ_mid`: geometric mean of the
     /// anchors; 0 weighs every crop alike). A crop's loss grows roughly like `√λ`, so with `α = 0`
     /// the high-λ crops dominate every batch's gradient and the low qualities are undertrained;
@@ -161,6 +164,7 @@ struct Run {
     step: u64,
     init: Option<String>,
     averages: Option<(f64, f64, f64)>,
+    warmup: Option<LatentWarmup>,
 }
 
 /// Re-targets the gain tables in `tensors` from anchors `old` to `new`. Adam moments of the gain
@@ -186,13 +190,23 @@ fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64
 }
 
 /// Applies `o.latent_channels` (growing the latent) and `o.lambdas` (re-targeting the gain
-/// tables) to a model's `tensors` and `config`; whether anything changed. Adam moments of
-/// grown tensors no longer fit and restart from zero ([`Adam::load_state`]).
-fn adapt(tensors: &mut HashMap<String, Tensor>, config: &mut ModelConfig, o: &TrainOptions) -> Result<bool> {
+/// tables) to a model's `tensors` and `config` at `step`; whether anything changed, and the
+/// rate warm-up of the grown channels when the latent grew. Adam moments of grown tensors no
+/// longer fit and restart from zero ([`Adam::load_state`]).
+fn adapt(
+    tensors: &mut HashMap<String, Tensor>,
+    config: &mut ModelConfig,
+    o: &TrainOptions,
+    step: u64,
+) -> Result<(bool, Option<LatentWarmup>)> {
     let mut changed = false;
+    let mut warmup = None;
     if let Some(m) = o.latent_channels.filter(|&m| m != config.m) {
         tensors.extend(widen::widen_latent(tensors, config, m, o.seed)?);
         eprintln!("latent grown from {} to {m} channels", config.m);
+        if o.latent_warmup > 0 {
+            warmup = Some(LatentWarmup { first_channel: config.m, from: step, steps: o.latent_warmup });
+        }
         config.m = m;
         changed = true;
     }
@@ -201,20 +215,30 @@ fn adapt(tensors: &mut HashMap<String, Tensor>, config: &mut ModelConfig, o: &Tr
         config.lambdas = new.clone();
         changed = true;
     }
-    Ok(changed)
+    Ok((changed, warmup))
 }
 
 fn start(o: &TrainOptions) -> Result<Run> {
     if let Some(ck) = &o.resume {
         let (mut meta, mut tensors) = checkpoint::load(ck)?;
-        adapt(&mut tensors, &mut meta.config, o)?;
+        let (_, grown) = adapt(&mut tensors, &mut meta.config, o, meta.step)?;
         let model = Model::new(meta.config.clone(), o.seed)?;
         model.load_weights(&tensors)?;
         let mut adam = Adam::new(model.named_vars(), AdamConfig::default())?;
         adam.load_state(&tensors, meta.step)?;
         eprintln!("resuming from {} at step {}", ck.display(), meta.step);
-        return Ok(Run { model, adam, rng: meta.rng(), step: meta.step, init: meta.init, averages: meta.averages });
+        let warmup = grown.or(meta.latent_warmup).filter(|w| w.weight(meta.step) < 1.0);
+        return Ok(Run {
+            model,
+            adam,
+            rng: meta.rng(),
+            step: meta.step,
+            init: meta.init,
+            averages: meta.averages,
+            warmup,
+        });
     }
+    let mut warmup = None;
     let (model, init) = match &o.init {
         Init::Fresh(c) => {
             let mut c = c.clone();
@@ -232,7 +256,9 @@ fn start(o: &TrainOptions) -> Result<Run> {
             let mut config = f.model.config.clone();
             let mut tensors: HashMap<String, Tensor> =
                 f.model.named_vars().into_iter().map(|(n, v)| (n, v.as_tensor().clone())).collect();
-            if adapt(&mut tensors, &mut config, o)? {
+            let (changed, grown) = adapt(&mut tensors, &mut config, o, 0)?;
+            warmup = grown;
+            if changed {
                 let model = Model::new(config, o.seed)?;
                 model.load_weights(&tensors)?;
                 (model, fingerprint)
@@ -242,7 +268,7 @@ fn start(o: &TrainOptions) -> Result<Run> {
         }
     };
     let adam = Adam::new(model.named_vars(), AdamConfig::default())?;
-    Ok(Run { model, adam, rng: ChaCha8Rng::seed_from_u64(o.seed), step: 0, init, averages: None })
+    Ok(Run { model, adam, rng: ChaCha8Rng::seed_from_u64(o.seed), step: 0, init, averages: None, warmup })
 }
 
 fn uniform_noise(rng: &mut ChaCha8Rng, shape: &[usize]) -> Result<Tensor> {
@@ -315,7 +341,17 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         let bal = Tensor::new(bal, &Device::Cpu)?;
         let out = run.model.forward_train(&x, &idx, &wts, &ny, &nz)?;
         let pixels = (p * p) as f64;
-        let bpp = ((&out.bits_y + &out.bits_z)? / pixels)?;
+        // Bits in the objective: a grown latent's new channels count with their warm-up weight.
+        let bits_y = match run.warmup {
+            Some(w) if w.weight(run.step) < 1.0 => {
+                let m = config.m;
+                let weights: Vec<f32> =
+                    (0..m).map(|c| if c < w.first_channel { 1.0 } else { w.weight(run.step) as f32 }).collect();
+                out.bits_y_channels.broadcast_mul(&Tensor::new(weights, &Device::Cpu)?.reshape((1, m))?)?.sum(1)?
+            }
+            _ => out.bits_y.clone(),
+        };
+        let bpp = ((&bits_y + &out.bits_z)? / pixels)?;
         let dist = o.distortion.per_sample(&out.x_hat, &x)?;
         let per_crop = (&bpp + ((&dist * &lam)? * o.distortion.lambda_scale())?)?;
         let loss = (&per_crop * &bal)?.mean(0)?;
@@ -333,7 +369,9 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         let scale = if norm > o.clip { o.clip / norm } else { 1.0 };
         run.adam.step(&grads, learning_rate(o, run.step), scale)?;
         run.step += 1;
-        let bpp_v = bpp.mean(0)?.to_scalar::<f32>()? as f64;
+        // Logged: the bits actually coded, whatever the warm-up weighs in the objective.
+        let coded_bpp = ((&out.bits_y + &out.bits_z)? / pixels)?;
+        let bpp_v = coded_bpp.mean(0)?.to_scalar::<f32>()? as f64;
         let mse_v = mse.to_scalar::<f32>()? as f64;
         let psnr_v = 10.0 * (255.0f64.powi(2) / mse_v.max(1e-10)).log10();
         let cur = (objective as f64, bpp_v, psnr_v);
@@ -408,6 +446,7 @@ fn save_checkpoint(o: &TrainOptions, run: &Run) -> Result<()> {
         rng_word_pos,
         init: run.init.clone(),
         averages: run.averages,
+        latent_warmup: run.warmup,
     };
     checkpoint::save(&o.checkpoint, &run.model, run.adam.state()?, &meta)
 }
