@@ -51,6 +51,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         distortion: kiln::train::Distortion::Mse,
         stop_after: None,
         balance: 0.0,
+        hidden_channels: None,
         latent_warmup: 0,
         progress: false,
     }
@@ -229,7 +230,7 @@ fn resuming_with_more_anchors_keeps_the_old_ones_and_extends_the_quality_range()
 }
 
 #[test]
-fn resuming_with_a_wider_latent_grows_it_and_keeps_training() {
+fn resuming_with_a_wider_latent_or_wider_transforms_grows_them_and_keeps_training() {
     let tmp = workspace();
     let out = tmp.path().join("m.safetensors");
     let mut o = options(tmp.path(), out.clone(), 10);
@@ -252,6 +253,12 @@ fn resuming_with_a_wider_latent_grows_it_and_keeps_training() {
     o.steps = 16;
     train(&o).unwrap();
     assert_eq!(checkpoint::load(&out.with_extension("ckpt")).unwrap().0.latent_warmup, warmup);
+    // The transforms grow too.
+    let n = before.model.config.n + 4;
+    o.steps = 18;
+    o.hidden_channels = Some(n);
+    train(&o).unwrap();
+    assert_eq!(ModelFile::load(Some(&out)).unwrap().model.config.n, n);
     o.latent_channels = Some(m - 1);
     let err = train(&o).unwrap_err();
     assert!(err.to_string().contains("can only grow"), "{err}");

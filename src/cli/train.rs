@@ -75,9 +75,14 @@ pub struct TrainArgs {
     /// that low qualities get a fair share of the gradient; 0 weighs all crops alike.
     #[arg(long, default_value_t = 0.0)]
     balance: f64,
+    /// Hidden channels N of the transforms: for a new model it replaces the config's; with
+    /// --init or --resume narrower transforms are grown to N, the grown model computing exactly
+    /// what the old one did.
+    #[arg(long, value_name = "N")]
+    hidden_channels: Option<usize>,
     /// With --latent-channels: phase the new channels' bits into the loss over this many steps
-    /// (rising linearly from 0), so that the synthesis learns to use them before the rate pulls
-    /// them to zero; 0 counts them fully at once.
+    /// (not counted for the first half, then rising linearly), so that the synthesis learns to
+    /// use them before the rate pulls them to zero; 0 counts them fully at once.
     #[arg(long, default_value_t = 0, value_name = "STEPS")]
     latent_warmup: u64,
     /// Print plain log lines instead of a progress bar.
@@ -123,6 +128,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         lambdas: a.lambdas,
         latent_channels: a.latent_channels,
         balance: a.balance,
+        hidden_channels: a.hidden_channels,
         latent_warmup: a.latent_warmup,
         progress: !a.log,
     };

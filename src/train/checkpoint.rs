@@ -41,9 +41,14 @@ pub struct CheckpointMeta {
     pub latent_warmup: Option<LatentWarmup>,
 }
 
-/// Rate warm-up of grown latent channels: their bits count in the training loss with a weight
-/// rising linearly from 0 at step `from` to 1 at step `from + steps`, so that the synthesis
-/// learns to use them before the rate pulls them to zero.
+/// Rate warm-up of grown latent channels: their bits do not count in the training loss for the
+/// first half of `steps` after the growth, then with a weight rising linearly to 1, so that the
+/// synthesis learns to use them before the rate pulls them to zero.
+///
+/// The hold at exactly 0 matters: Adam normalises each weight's step, so a small but consistent
+/// rate gradient moves the new channels' weights as fast as a large one while the distortion
+/// gradient is still near zero (measured: with a linear ramp from 0 over 4000 steps, the new
+/// channels' values fell from an RMS of 0.4–1.9 to 0.03–0.7 in the first 1000 steps).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct LatentWarmup {
     /// First grown channel (the latent's width before growing).
@@ -55,9 +60,14 @@ pub struct LatentWarmup {
 }
 
 impl LatentWarmup {
-    /// Weight of the grown channels' bits at `step`: 0 at `from`, 1 from `from + steps` on.
+    /// Weight of the grown channels' bits at `step`: 0 until `from + steps / 2`, 1 from
+    /// `from + steps` on, linear between.
     pub fn weight(&self, step: u64) -> f64 {
-        if self.steps == 0 { 1.0 } else { (step.saturating_sub(self.from) as f64 / self.steps as f64).min(1.0) }
+        if self.steps == 0 {
+            return 1.0;
+        }
+        let t = step.saturating_sub(self.from) as f64 / self.steps as f64;
+        (2.0 * t - 1.0).clamp(0.0, 1.0)
     }
 }
 
@@ -114,12 +124,10 @@ mod tests {
     use super::*;
 
     #[test]
-    fn latent_warmup_rises_linearly_from_its_start() {
+    fn latent_warmup_holds_at_zero_then_rises_linearly() {
         let w = LatentWarmup { first_channel: 96, from: 1000, steps: 400 };
-        assert_eq!(
-            [w.weight(900), w.weight(1000), w.weight(1100), w.weight(1400), w.weight(5000)],
-            [0.0, 0.0, 0.25, 1.0, 1.0]
-        );
+        let at = |s: &[u64]| s.iter().map(|&s| w.weight(s)).collect::<Vec<_>>();
+        assert_eq!(at(&[900, 1000, 1200, 1300, 1400, 5000]), [0.0, 0.0, 0.0, 0.5, 1.0, 1.0]);
         assert_eq!(LatentWarmup { steps: 0, ..w }.weight(1000), 1.0);
     }
 }

@@ -88,8 +88,14 @@ pub struct TrainOptions {
     /// `resume` a smaller latent is grown to it ([`widen::widen_latent`]: the grown model starts
     /// out computing what the old one did). `None` keeps the model's own.
     pub latent_channels: Option<usize>,
+    /// Hidden channels `N` of the analysis and synthesis transforms. For a new model it replaces
+    /// the configuration's; with `init` or `resume` narrower transforms are grown to it
+    /// ([`widen::widen_hidden`]: the grown model computes exactly what the old one did). `None`
+    /// keeps the model's own.
+    pub hidden_channels: Option<usize>,
     /// Steps over which a grown latent's new channels' bits are phased into the loss
-    /// ([`LatentWarmup`]); 0 counts them fully from the start.
+    /// ([`LatentWarmup`]: not at all for the first half, then linearly); 0 counts them fully
+    /// from the start.
     pub latent_warmup: u64,
     /// Exponent `α` of the per-crop loss weight `(λ_mid / λ)^α` (`λ_mid`: geometric mean of the
     /// anchors; 0 weighs every crop alike). A crop's loss grows roughly like `√λ`, so with `α = 0`
@@ -189,8 +195,8 @@ fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64
     Ok(())
 }
 
-/// Applies `o.latent_channels` (growing the latent) and `o.lambdas` (re-targeting the gain
-/// tables) to a model's `tensors` and `config` at `step`; whether anything changed, and the
+/// Applies `o.latent_channels` (growing the latent), `o.hidden_channels` (growing the
+/// transforms) and `o.lambdas` (re-targeting the gain tables) to a model's `tensors` and `config` at `step`; whether anything changed, and the
 /// rate warm-up of the grown channels when the latent grew. Adam moments of grown tensors no
 /// longer fit and restart from zero ([`Adam::load_state`]).
 fn adapt(
@@ -208,6 +214,12 @@ fn adapt(
             warmup = Some(LatentWarmup { first_channel: config.m, from: step, steps: o.latent_warmup });
         }
         config.m = m;
+        changed = true;
+    }
+    if let Some(n) = o.hidden_channels.filter(|&n| n != config.n) {
+        tensors.extend(widen::widen_hidden(tensors, config, n, o.seed)?);
+        eprintln!("transforms grown from {} to {n} hidden channels", config.n);
+        config.n = n;
         changed = true;
     }
     if let Some(new) = o.lambdas.as_ref().filter(|l| **l != config.lambdas) {
@@ -247,6 +259,9 @@ fn start(o: &TrainOptions) -> Result<Run> {
             }
             if let Some(m) = o.latent_channels {
                 c.m = m;
+            }
+            if let Some(n) = o.hidden_channels {
+                c.n = n;
             }
             (Model::new(c, o.seed)?, None)
         }

@@ -105,29 +105,90 @@ pub fn widen_latent(
     Ok(out)
 }
 
+/// Grows the hidden channels `N` of the analysis and synthesis transforms in `tensors` (a
+/// model's variables, by name) of a model with configuration `old` to `n`, so that the grown
+/// model computes exactly what the old one did.
+///
+/// Each new hidden channel is computed with a fresh model's initial row (`Model::new(.., seed)`)
+/// rescaled to the old rows' mean norm, normalised by its own GDN entries only (the old
+/// channels' GDN reads it with zero weight), and read by the next layer with zero weights. So
+/// nothing changes at first, and since the new channels' activations are not zero, the weights
+/// reading them get a gradient from the first step (no rounding or rate stands in between, as it
+/// does for latent channels). The hyper networks keep their width. Fails when `n` is not larger
+/// than `old.n` or when a tensor's shape does not match the configuration.
+pub fn widen_hidden(
+    tensors: &HashMap<String, Tensor>,
+    old: &ModelConfig,
+    n: usize,
+    seed: u64,
+) -> Result<HashMap<String, Tensor>> {
+    if n <= old.n {
+        return Err(KilnError::InvalidArgument(format!(
+            "--hidden-channels {n} must be larger than the model's {}\nhint: the transforms can only grow",
+            old.n
+        )));
+    }
+    let fresh = Model::new(ModelConfig { n, ..old.clone() }, seed)?;
+    let mut out = HashMap::new();
+    for (name, var) in fresh.named_vars() {
+        let new = var.as_tensor();
+        let t = tensors.get(&name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?;
+        if t.dims() == new.dims() {
+            out.insert(name, t.clone());
+            continue;
+        }
+        let transform = name.starts_with("g_a.") || name.starts_with("g_s.");
+        if !transform || t.rank() != new.rank() || t.dims().iter().zip(new.dims()).any(|(a, b)| a > b) {
+            return Err(KilnError::BadModel(format!(
+                "weight {name}: shape {:?} cannot grow to {:?}",
+                t.dims(),
+                new.dims()
+            )));
+        }
+        out.insert(name, grow_block(t, new)?);
+    }
+    Ok(out)
+}
+
+/// `t` grown to the shape of `fresh` along dimensions 0 (outputs) and 1 (inputs): the old block
+/// kept, old outputs reading new inputs zero, new outputs taken from `fresh` (convolution rows
+/// rescaled to the old rows' mean norm).
+fn grow_block(t: &Tensor, fresh: &Tensor) -> Result<Tensor> {
+    let (old0, new0) = (t.dims()[0], fresh.dims()[0]);
+    let mut top = t.clone();
+    if t.rank() >= 2 && fresh.dims()[1] > t.dims()[1] {
+        let mut shape = t.dims().to_vec();
+        shape[1] = fresh.dims()[1] - t.dims()[1];
+        top = Tensor::cat(&[t, &Tensor::zeros(shape, t.dtype(), t.device())?], 1)?;
+    }
+    if new0 == old0 {
+        return Ok(top);
+    }
+    let rows = fresh.narrow(0, old0, new0 - old0)?;
+    let rows = if t.rank() == 4 { matched_rows(t, &rows)? } else { rows };
+    Ok(Tensor::cat(&[&top, &rows], 0)?)
+}
+
 /// `t` with its dimension `d` grown from `old` to `m`, the new slice filled by `fill`.
 fn grow(t: &Tensor, fresh: &Tensor, d: usize, old: usize, m: usize, fill: Fill) -> Result<Tensor> {
     let extra = fresh.narrow(d, old, m - old)?;
     let extra = match fill {
         Fill::Zero => extra.zeros_like()?,
         Fill::MatchedRows if t.rank() == 1 => extra,
-        Fill::MatchedRows => {
-            let norms =
-                |x: &Tensor| -> candle_core::Result<Tensor> { x.flatten_from(1)?.sqr()?.sum_keepdim(1)?.sqrt() };
-            let target = norms(t)?.mean_all()?.to_scalar::<f32>()? as f64;
-            let scale = (norms(&extra)?.recip()? * target)?;
-            extra.broadcast_mul(&scale.reshape(scale_shape(extra.rank(), m - old))?)?
-        }
+        Fill::MatchedRows => matched_rows(t, &extra)?,
         Fill::RowMean => t.mean_keepdim(D::Minus1)?.broadcast_as(extra.shape())?.contiguous()?,
     };
     Ok(Tensor::cat(&[t, &extra], d)?)
 }
 
-/// `(n, 1, 1, …)` with `rank` dimensions.
-fn scale_shape(rank: usize, n: usize) -> Vec<usize> {
-    let mut shape = vec![1; rank];
-    shape[0] = n;
-    shape
+/// `rows` (along dimension 0) each rescaled to the mean L2 norm of `reference`'s rows.
+fn matched_rows(reference: &Tensor, rows: &Tensor) -> Result<Tensor> {
+    let norms = |x: &Tensor| -> candle_core::Result<Tensor> { x.flatten_from(1)?.sqr()?.sum(1)?.sqrt() };
+    let target = norms(reference)?.mean_all()?.to_scalar::<f32>()? as f64;
+    let scale = (norms(rows)?.recip()? * target)?;
+    let mut shape = vec![1; rows.rank()];
+    shape[0] = rows.dim(0)?;
+    Ok(rows.broadcast_mul(&scale.reshape(shape)?)?)
 }
 
 /// The hyper-synthesis output layer (`2M` outputs: means, then log-scales) grown to `2m`: new
@@ -202,6 +263,60 @@ mod tests {
         assert!(hs[old_m..m].iter().all(|&b| b == 0.0), "new means must be predicted as 0");
         let ln_scale = NEW_CHANNEL_SCALE.ln() as f32;
         assert!(hs[m + old_m..].iter().all(|&b| b == ln_scale), "new scales: {:?}", &hs[m + old_m..]);
+    }
+
+    #[test]
+    fn model_with_grown_transforms_computes_exactly_what_the_old_one_did() {
+        let small = Model::new(ModelConfig::tiny(), 3).unwrap();
+        let old_n = small.config.n;
+        let grown_t = widen_hidden(&tensors(&small), &small.config, old_n + 6, 9).unwrap();
+        let grown = Model::new(ModelConfig { n: old_n + 6, ..small.config.clone() }, 0).unwrap();
+        grown.load_weights(&grown_t).unwrap();
+
+        let x = Tensor::rand(0f32, 1.0, (2, 3, 64, 64), &Device::Cpu).unwrap();
+        let idx = Tensor::new(&[0u32, 1], &Device::Cpu).unwrap();
+        let w = Tensor::new(&[0.3f32, 0.8], &Device::Cpu).unwrap();
+        let m = small.config.m;
+        let ny = Tensor::rand(-0.5f32, 0.5, (2, m, 4, 4), &Device::Cpu).unwrap();
+        let nz = Tensor::rand(-0.5f32, 0.5, (2, small.config.nz, 1, 1), &Device::Cpu).unwrap();
+        let a = small.forward_train(&x, &idx, &w, &ny, &nz).unwrap();
+        let b = grown.forward_train(&x, &idx, &w, &ny, &nz).unwrap();
+        let max_diff =
+            |p: &Tensor, q: &Tensor| (p - q).unwrap().abs().unwrap().max_all().unwrap().to_scalar::<f32>().unwrap();
+        assert!(max_diff(&a.x_hat, &b.x_hat) < 1e-5, "reconstruction changed");
+        assert!(max_diff(&a.bits_y, &b.bits_y) < 1e-3, "latent rate changed");
+        assert!(max_diff(&a.bits_z, &b.bits_z) < 1e-3, "hyper-latent rate changed");
+        // New rows compute the new channels at the old rows' mean norm; old rows read them
+        // with zeros, and so do the old channels' GDN entries.
+        let old_t = tensors(&small);
+        let rows = |t: &Tensor| -> Vec<f32> {
+            t.flatten_from(1).unwrap().sqr().unwrap().sum(1).unwrap().sqrt().unwrap().to_vec1().unwrap()
+        };
+        let old_rows = rows(&old_t["g_a.2.weight"]);
+        let target = old_rows.iter().sum::<f32>() / old_n as f32;
+        for r in rows(&grown_t["g_a.2.weight"].narrow(0, old_n, 6).unwrap()) {
+            assert!((r - target).abs() < 1e-4 * target, "new row norm {r}, old rows' mean {target}");
+        }
+        let reading_new = |name: &str| {
+            let t = &grown_t[name];
+            let d0 = old_t[name].dims()[0];
+            t.narrow(0, 0, d0)
+                .unwrap()
+                .narrow(1, old_n, 6)
+                .unwrap()
+                .abs()
+                .unwrap()
+                .max_all()
+                .unwrap()
+                .to_scalar::<f32>()
+                .unwrap()
+        };
+        for name in ["g_a.2.weight", "g_a.6.weight", "g_s.2.weight", "g_s.6.weight", "g_a.1.gamma", "g_s.3.gamma"] {
+            assert_eq!(reading_new(name), 0.0, "{name}: old outputs must read the new channels with zeros");
+        }
+        assert_eq!(grown_t["g_s.0.weight"].dims()[0], 4 * (old_n + 6));
+        let err = widen_hidden(&tensors(&small), &small.config, old_n, 1).unwrap_err();
+        assert!(err.to_string().contains("must be larger"), "{err}");
     }
 
     #[test]
