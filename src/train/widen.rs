@@ -56,8 +56,8 @@ enum Fill {
     RowMean,
 }
 
-/// Grows the weights in `tensors` (a model's variables, by name; other entries such as optimizer
-/// moments are ignored) of a model with configuration `old` to `m` latent channels.
+/// Grows the weights in `tensors` (a model's variables by name, and their Adam moments when
+/// present: old entries keep theirs) of a model with configuration `old` to `m` latent channels.
 ///
 /// Returns the variables of a model with `ModelConfig { m, ..old }`; new analysis rows come from
 /// `Model::new(.., seed)`, rescaled. Fails when `m` is not larger than `old.m` or
@@ -85,8 +85,8 @@ pub fn widen_latent(
             return Err(bad());
         }
         let differing: Vec<usize> = (0..t.rank()).filter(|&d| t.dims()[d] != new.dims()[d]).collect();
-        let grown = match differing.as_slice() {
-            [] => t.clone(),
+        let (grown, halves) = match differing.as_slice() {
+            [] => (t.clone(), false),
             &[d] if t.dims()[d] == old.m && new.dims()[d] == m => {
                 let fill = if name.starts_with("gain.") {
                     Fill::RowMean
@@ -95,18 +95,21 @@ pub fn widen_latent(
                 } else {
                     Fill::Zero
                 };
-                grow(t, new, d, old.m, m, fill)?
+                (grow(t, new, d, old.m, m, fill)?, false)
             }
-            [0] if t.dims()[0] == 2 * old.m && new.dims()[0] == 2 * m => grow_mean_scale(t, new, old.m, m)?,
+            [0] if t.dims()[0] == 2 * old.m && new.dims()[0] == 2 * m => (grow_mean_scale(t, new, old.m, m)?, true),
             _ => return Err(bad()),
         };
+        if grown.dims() != t.dims() {
+            out.extend(grow_moments(tensors, &name, new.dims(), halves)?);
+        }
         out.insert(name, grown);
     }
     Ok(out)
 }
 
 /// Grows the hidden channels `N` of the analysis and synthesis transforms in `tensors` (a
-/// model's variables, by name) of a model with configuration `old` to `n`, so that the grown
+/// model's variables by name, and their Adam moments when present) of a model with configuration `old` to `n`, so that the grown
 /// model computes exactly what the old one did.
 ///
 /// Each new hidden channel is computed with a fresh model's initial row (`Model::new(.., seed)`)
@@ -145,9 +148,59 @@ pub fn widen_hidden(
                 new.dims()
             )));
         }
+        out.extend(grow_moments(tensors, &name, new.dims(), false)?);
         out.insert(name, grow_block(t, new)?);
     }
     Ok(out)
+}
+
+/// The Adam moments of variable `name` in `tensors` (`adam.m.{name}`, `adam.v.{name}`; none
+/// when absent) grown to `shape` like the variable: the old entries keep theirs, which spares
+/// the trained weights the large first steps of an optimizer without history (with moments
+/// restarted at a late step, Adam's first steps are 3–6 times the learning rate: growing all
+/// transforms with restarted moments dropped the training PSNR from 32 to about 28 dB within 50
+/// steps). New entries start with a zero first moment and the old entries' mean second
+/// moment, i.e. steps scaled like their neighbours'. `halves`: the variable is two stacked
+/// halves along dimension 0 (means, then log-scales), each grown at its end.
+fn grow_moments(
+    tensors: &HashMap<String, Tensor>,
+    name: &str,
+    shape: &[usize],
+    halves: bool,
+) -> Result<HashMap<String, Tensor>> {
+    let mut out = HashMap::new();
+    for kind in ["m", "v"] {
+        let key = format!("adam.{kind}.{name}");
+        let Some(t) = tensors.get(&key) else { continue };
+        let t = t.to_dtype(candle_core::DType::F32)?;
+        let fill = if kind == "m" { 0.0 } else { t.mean_all()?.to_scalar::<f32>()? };
+        let grown = if halves {
+            let (old_half, mut half_shape) = (t.dim(0)? / 2, shape.to_vec());
+            half_shape[0] /= 2;
+            let a = embed(&t.narrow(0, 0, old_half)?, &half_shape, fill)?;
+            let b = embed(&t.narrow(0, old_half, old_half)?, &half_shape, fill)?;
+            Tensor::cat(&[&a, &b], 0)?
+        } else {
+            embed(&t, shape, fill)?
+        };
+        out.insert(key, grown);
+    }
+    Ok(out)
+}
+
+/// `t` as the leading block of a tensor of `shape`, the rest filled with `fill`.
+fn embed(t: &Tensor, shape: &[usize], fill: f32) -> Result<Tensor> {
+    let mut cur = t.clone();
+    for (d, &len) in shape.iter().enumerate() {
+        let have = cur.dim(d)?;
+        if len > have {
+            let mut extra = cur.dims().to_vec();
+            extra[d] = len - have;
+            let pad = (Tensor::ones(extra, cur.dtype(), cur.device())? * fill as f64)?;
+            cur = Tensor::cat(&[&cur, &pad], d)?;
+        }
+    }
+    Ok(cur)
 }
 
 /// `t` grown to the shape of `fresh` along dimensions 0 (outputs) and 1 (inputs): the old block
@@ -317,6 +370,55 @@ mod tests {
         assert_eq!(grown_t["g_s.0.weight"].dims()[0], 4 * (old_n + 6));
         let err = widen_hidden(&tensors(&small), &small.config, old_n, 1).unwrap_err();
         assert!(err.to_string().contains("must be larger"), "{err}");
+    }
+
+    #[test]
+    fn adam_moments_grow_with_their_variables_and_keep_the_old_entries() {
+        let small = Model::new(ModelConfig::tiny(), 3).unwrap();
+        let (old_m, old_n) = (small.config.m, small.config.n);
+        let mut t = tensors(&small);
+        for (name, var) in small.named_vars() {
+            let v = Tensor::rand(1f32, 2.0, var.dims(), &Device::Cpu).unwrap();
+            t.insert(format!("adam.m.{name}"), (&v * -1.0).unwrap());
+            t.insert(format!("adam.v.{name}"), v);
+        }
+        let check = |grown: &HashMap<String, Tensor>, name: &str, old_rows: &[(usize, usize)], new_rows: &[usize]| {
+            let (m, v) = (&grown[&format!("adam.m.{name}")], &grown[&format!("adam.v.{name}")]);
+            assert_eq!(m.dims(), grown[name].dims(), "{name}");
+            let v_old = &t[&format!("adam.v.{name}")];
+            let mean = v_old.mean_all().unwrap().to_scalar::<f32>().unwrap();
+            // (row in the old tensor, row in the grown one): kept; new rows: m 0, v the mean.
+            for &(o, g) in old_rows {
+                let (a, b) = (v_old.get(o).unwrap(), v.get(g).unwrap());
+                let b = b.narrow(0, 0, a.dim(0).unwrap()).unwrap();
+                assert_eq!(
+                    a.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+                    b.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+                    "{name} row {o}"
+                );
+            }
+            for &g in new_rows {
+                let mv = m.get(g).unwrap().flatten_all().unwrap().to_vec1::<f32>().unwrap();
+                let vv = v.get(g).unwrap().flatten_all().unwrap().to_vec1::<f32>().unwrap();
+                assert!(mv.iter().all(|&x| x == 0.0) && vv.iter().all(|&x| (x - mean).abs() < 1e-6), "{name} row {g}");
+            }
+        };
+        let grown = widen_latent(&t, &small.config, old_m + 2, 1).unwrap();
+        check(&grown, "g_a.6.weight", &[(0, 0), (old_m - 1, old_m - 1)], &[old_m, old_m + 1]);
+        // Means then log-scales: old log-scale rows move up by the two new means.
+        check(&grown, "h_s.4.bias", &[], &[old_m, old_m + 1, 2 * old_m + 2, 2 * old_m + 3]);
+        let hs_v = grown["adam.v.h_s.4.weight"].get(old_m + 2).unwrap();
+        let hs_old = t["adam.v.h_s.4.weight"].get(old_m).unwrap();
+        assert_eq!(
+            hs_v.flatten_all().unwrap().to_vec1::<f32>().unwrap(),
+            hs_old.flatten_all().unwrap().to_vec1::<f32>().unwrap()
+        );
+        let grown = widen_hidden(&t, &small.config, old_n + 3, 1).unwrap();
+        check(&grown, "g_a.2.weight", &[(0, 0), (old_n - 1, old_n - 1)], &[old_n, old_n + 2]);
+        check(&grown, "g_s.1.gamma", &[(1, 1)], &[old_n + 1]);
+        // Old rows read the new inputs with a zero first moment and the mean second moment.
+        let row = grown["adam.m.g_a.2.weight"].get(0).unwrap().narrow(0, old_n, 3).unwrap();
+        assert_eq!(row.abs().unwrap().max_all().unwrap().to_scalar::<f32>().unwrap(), 0.0);
     }
 
     #[test]
