@@ -21,8 +21,8 @@ use rayon::prelude::*;
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ConvBackend {
     /// The fused patch-rows + gemm convolution ([`super::fused_conv`]), 3×3 stride-1 layers by
-    /// Winograd's method ([`super::winograd`]) and stride-2 layers over few input channels by
-    /// a vectorized direct kernel ([`super::few_inputs`]): the default.
+    /// Winograd's method (`kernels::winograd`) and stride-2 layers over few input channels by
+    /// a vectorized direct kernel (`kernels::few_inputs`): the default.
     Fast,
     /// As `Fast`, but every layer as a gemm (implicit GEMM or patch rows): for comparison.
     GemmOnly,

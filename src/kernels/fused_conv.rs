@@ -2,7 +2,7 @@
 //! no intermediate tensors in candle's graph.
 //!
 //! Forward, per image `b`: `Yᵦᵀ (L × O) = Rᵦ (L × k²C) · W (k²C × O)`, where `Rᵦ` are the patch
-//! rows of the image ([`PatchRows`] layout, `[ky][kx][c]`) and the product is written straight
+//! rows of the image ([`super::conv::PatchRows`] layout, `[ky][kx][c]`) and the product is written straight
 //! into NCHW. Backward: `dW = Σᵦ Rᵦᵀ · dYᵦᵀ` (patch rows recomputed, one image at a time) and
 //! `dRᵦ = dYᵦᵀ · Wᵀ`, summed back onto the image. Working memory is one image's patch rows, and
 //! candle's autograd sees a single node, so no zero-filled gradient buffers are allocated for the

@@ -1,21 +1,25 @@
-//! Growing a trained model's latent: more channels `M` without losing what it has learned.
+//! Growing a trained model without losing what it has learned: more latent channels `M`
+//! ([`widen_latent`]) or more hidden channels `N` in the transforms ([`widen_hidden`]).
 //!
-//! The grown model starts out reconstructing exactly what the old one did, with new channels
-//! that carry a signal from the first step. The analysis computes each new channel with a fresh
-//! model's initial row rescaled to the old rows' mean norm, so the new channels are as large as
-//! the old ones and most of their values do not round to zero. The synthesis reads them with zero
-//! weights: the image is unchanged, and since the rounded values are not zero those weights get
-//! a distortion gradient at once. The first hyper-analysis layer reads them with zero weights too
-//! (the hyper-latent is unchanged), and the hyper-synthesis predicts mean 0 for them at the wide
-//! scale [`NEW_CHANNEL_SCALE`], so that the rate's pull on the new values (about `y / σ²`) stays
-//! weak while the synthesis learns to use them. Their gains start at the mean of the old
-//! channels' gains for the same anchor.
+//! A model with a grown latent starts out reconstructing exactly what the old one did, with new
+//! channels that carry a signal from the first step. The analysis computes each new channel with
+//! a fresh model's initial row rescaled to the old rows' mean norm, so the new channels are as
+//! large as the old ones and most of their values do not round to zero. The synthesis reads them
+//! with zero weights: the image is unchanged, and since the rounded values are not zero those
+//! weights get a distortion gradient at once. The first hyper-analysis layer reads them with
+//! zero weights too (the hyper-latent is unchanged), and the hyper-synthesis predicts mean 0 for
+//! them at the wide scale [`NEW_CHANNEL_SCALE`]; the training's rate warm-up
+//! ([`crate::train::checkpoint::LatentWarmup`]) keeps their bits out of the loss at first, so
+//! that the rate cannot pull them to zero before the synthesis has learned to use them. Their
+//! gains start at the mean of the old channels' gains for the same anchor.
 //!
 //! Measured: a first rule (rows and synthesis weights a tenth of a fresh model's, new values
 //! predicted at scale 0.2) started cheaper (+0.007 bpp) but its channels never came alive: after
 //! 18 000 steps none of their values rounded to anything but zero on the validation photographs
 //! (`examples/latent_usage`), since the rate pulled them to zero (`y / 0.04`) before the
-//! synthesis could use them.
+//! synthesis could use them. The same happened to this rule's channels when their bits counted
+//! from the start, or rose linearly from 0 (collapsed within 1000 steps): Adam moves a weight
+//! as fast for a small consistent gradient as for a large one, so only a hold at 0 protects them.
 //!
 //! Which rule a tensor gets is decided by its shape (a dimension that was `M`, or `2M` for the
 //! hyper-synthesis output: means then log-scales) and, for reading weights, by its transform.
@@ -109,8 +113,8 @@ pub fn widen_latent(
 }
 
 /// Grows the hidden channels `N` of the analysis and synthesis transforms in `tensors` (a
-/// model's variables by name, and their Adam moments when present) of a model with configuration `old` to `n`, so that the grown
-/// model computes exactly what the old one did.
+/// model's variables by name, and their Adam moments when present) of a model with
+/// configuration `old` to `n`, so that the grown model computes exactly what the old one did.
 ///
 /// Each new hidden channel is computed with a fresh model's initial row (`Model::new(.., seed)`)
 /// rescaled to the old rows' mean norm, normalised by its own GDN entries only (the old
