@@ -3,6 +3,8 @@
 //! ideal bits, for channels `[0, K)` and `[K, M)` apart (e.g. a grown latent's old and new
 //! channels; `K` = M by default).
 //! `cargo run --release --example latent_usage -- MODEL [--split K] IMAGE...`
+//! With `KILN_BITS_MAP=DIR` it also writes each image's bits per latent position (summed over
+//! channels) as a text grid, `DIR/{image}-q{quality}.txt`.
 
 use candle_core::{Device, Module, Tensor};
 use kiln::{AlphaPolicy, ModelFile, Picture};
