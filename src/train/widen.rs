@@ -78,13 +78,10 @@ pub fn widen_latent(
             old.m
         )));
     }
-    let fresh = Model::new(ModelConfig { m, ..old.clone() }, seed)?;
     let mut out = HashMap::new();
-    for (name, var) in fresh.named_vars() {
-        let new = var.as_tensor();
-        let t = tensors.get(&name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?;
-        let bad =
-            || KilnError::BadModel(format!("weight {name}: shape {:?} cannot grow to {:?}", t.dims(), new.dims()));
+    for (name, t, new) in paired(tensors, &ModelConfig { m, ..old.clone() }, seed)? {
+        let (t, new) = (&t, &new);
+        let bad = || cannot_grow(&name, t, new);
         if t.rank() != new.rank() {
             return Err(bad());
         }
@@ -135,27 +132,40 @@ pub fn widen_hidden(
             old.n
         )));
     }
-    let fresh = Model::new(ModelConfig { n, ..old.clone() }, seed)?;
     let mut out = HashMap::new();
-    for (name, var) in fresh.named_vars() {
-        let new = var.as_tensor();
-        let t = tensors.get(&name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?;
+    for (name, t, new) in paired(tensors, &ModelConfig { n, ..old.clone() }, seed)? {
+        let (t, new) = (&t, &new);
         if t.dims() == new.dims() {
             out.insert(name, t.clone());
             continue;
         }
         let transform = name.starts_with("g_a.") || name.starts_with("g_s.");
         if !transform || t.rank() != new.rank() || t.dims().iter().zip(new.dims()).any(|(a, b)| a > b) {
-            return Err(KilnError::BadModel(format!(
-                "weight {name}: shape {:?} cannot grow to {:?}",
-                t.dims(),
-                new.dims()
-            )));
+            return Err(cannot_grow(&name, t, new));
         }
         out.extend(grow_moments(tensors, &name, new.dims(), false)?);
         out.insert(name, grow_block(t, new)?);
     }
     Ok(out)
+}
+
+/// Each variable of a fresh model with configuration `grown` (seeded with `seed`) as
+/// `(name, old tensor from tensors, fresh tensor)`; fails when `tensors` lacks one.
+fn paired(tensors: &HashMap<String, Tensor>, grown: &ModelConfig, seed: u64) -> Result<Vec<(String, Tensor, Tensor)>> {
+    let fresh = Model::new(grown.clone(), seed)?;
+    fresh
+        .named_vars()
+        .into_iter()
+        .map(|(name, var)| {
+            let t = tensors.get(&name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?.clone();
+            Ok((name, t, var.as_tensor().clone()))
+        })
+        .collect()
+}
+
+/// The error for a weight whose shape does not grow to the new configuration's.
+fn cannot_grow(name: &str, t: &Tensor, new: &Tensor) -> KilnError {
+    KilnError::BadModel(format!("weight {name}: shape {:?} cannot grow to {:?}", t.dims(), new.dims()))
 }
 
 /// The Adam moments of variable `name` in `tensors` (`adam.m.{name}`, `adam.v.{name}`; none
