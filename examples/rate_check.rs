@@ -49,5 +49,10 @@ fn main() -> kiln::Result<()> {
         let bz = out.bits_z.to_vec1::<f32>()?[0] as f64 / (w * h) as f64;
         println!("training rate with noise x{amp}: y {by:.4} z {bz:.4} bpp");
     }
+    let out = model.forward_train_rounded(&x, &idx, &wt)?;
+    let by = out.bits_y.to_vec1::<f32>()?[0] as f64 / (w * h) as f64;
+    let bz = out.bits_z.to_vec1::<f32>()?[0] as f64 / (w * h) as f64;
+    let mse = ((&out.x_hat - &x)? * 255.0)?.sqr()?.mean_all()?.to_scalar::<f32>()? as f64;
+    println!("training rate rounded: y {by:.4} z {bz:.4} bpp, PSNR {:.2} dB", 10.0 * (255.0f64.powi(2) / mse).log10());
     Ok(())
 }

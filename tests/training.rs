@@ -53,6 +53,8 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         balance: 0.0,
         hidden_channels: None,
         latent_warmup: 0,
+        encoder_only: false,
+        rounded_rate: false,
         progress: false,
     }
 }
@@ -266,4 +268,84 @@ fn resuming_with_a_wider_latent_or_wider_transforms_grows_them_and_keeps_trainin
     let pic = synthetic_picture(128, 96, 3, 5);
     let dec = codec.decode(&codec.encode(&pic, 50.0).unwrap().bytes).unwrap();
     assert_eq!((dec.width, dec.height), (128, 96));
+}
+
+#[test]
+fn rounded_training_rate_is_the_rate_the_codec_estimates_for_its_coded_values() {
+    let tmp = workspace();
+    let out = tmp.path().join("m.safetensors");
+    train(&options(tmp.path(), out.clone(), 30)).unwrap();
+    let file = ModelFile::load(Some(&out)).unwrap();
+    let model = file.model.clone();
+    let codec = Codec::new(file).unwrap();
+    // One 128×128 tile: no padding, so the training pass sees exactly the codec's input.
+    let pic = synthetic_picture(128, 128, 3, 5);
+    let (w, h) = (pic.width as usize, pic.height as usize);
+    let planar: Vec<f32> =
+        (0..3).flat_map(|c| (0..w * h).map(move |i| (c, i))).map(|(c, i)| pic.data[i * 3 + c] as f32 / 255.0).collect();
+    let x = candle_core::Tensor::from_vec(planar, (1, 3, h, w), &candle_core::Device::Cpu).unwrap();
+    for (anchor, quality) in [(0u32, 1.0f32), (1, 100.0)] {
+        // Quality 100 is anchor 1 with weight 1 in a three-anchor model.
+        let weight = if quality == 100.0 { 1.0f32 } else { 0.0 };
+        let idx = candle_core::Tensor::new(&[anchor], &candle_core::Device::Cpu).unwrap();
+        let wt = candle_core::Tensor::new(&[weight], &candle_core::Device::Cpu).unwrap();
+        let o = model.forward_train_rounded(&x, &idx, &wt).unwrap();
+        let bits = |t: &candle_core::Tensor| t.sum_all().unwrap().to_scalar::<f32>().unwrap() as f64;
+        let (by, bz) = codec.estimate_bits(&pic, quality).unwrap();
+        // The codec runs the hyper-synthesis on its fixed-order path, training on candle's:
+        // the same means and scales up to float rounding.
+        for (name, train_bits, codec_bits) in [("latent", bits(&o.bits_y), by), ("hyper", bits(&o.bits_z), bz)] {
+            let rel = (train_bits - codec_bits).abs() / codec_bits.max(1.0);
+            assert!(rel < 1e-3, "q{quality} {name}: training pass {train_bits:.1} bits, codec {codec_bits:.1}");
+        }
+    }
+}
+
+#[test]
+fn encoder_only_training_moves_the_encoder_and_keeps_the_decoder_bit_for_bit() {
+    let tmp = workspace();
+    let base = tmp.path().join("base.safetensors");
+    train(&options(tmp.path(), base.clone(), 40)).unwrap();
+    let tuned = tmp.path().join("tuned.safetensors");
+    let mut o = options(tmp.path(), tuned.clone(), 40);
+    o.init = Init::FineTune(Some(base.clone()));
+    o.encoder_only = true;
+    o.lr = 1e-3;
+    train(&o).unwrap();
+
+    let a = ModelFile::load(Some(&base)).unwrap();
+    let b = ModelFile::load(Some(&tuned)).unwrap();
+    let mut encoder_moved = false;
+    for ((name, va), (_, vb)) in a.model.named_vars().iter().zip(b.model.named_vars().iter()) {
+        let (va, vb) = (va.as_tensor().flatten_all().unwrap(), vb.as_tensor().flatten_all().unwrap());
+        let same = va.to_vec1::<f32>().unwrap() == vb.to_vec1::<f32>().unwrap();
+        if kiln::model::is_encoder_weight(name) {
+            encoder_moved |= !same;
+        } else {
+            assert!(same, "{name} changed in encoder-only training");
+        }
+    }
+    assert!(encoder_moved, "no encoder weight changed");
+}
+
+#[test]
+fn encoder_only_training_refuses_a_new_model_or_a_change_of_shape() {
+    let tmp = workspace();
+    let base = tmp.path().join("base.safetensors");
+    let mut o = options(tmp.path(), base.clone(), 5);
+    o.encoder_only = true;
+    let err = train(&o).unwrap_err();
+    assert!(err.to_string().contains("--init"), "{err}");
+    o.encoder_only = false;
+    o.rounded_rate = true;
+    let err = train(&o).unwrap_err();
+    assert!(err.to_string().contains("--encoder-only"), "{err}");
+    o.rounded_rate = false;
+    train(&o).unwrap();
+    let mut o = options(tmp.path(), tmp.path().join("wide.safetensors"), 5);
+    o.init = Init::FineTune(Some(base));
+    o.encoder_only = true;
+    o.latent_channels = Some(ModelConfig::tiny().m + 4);
+    let err = train(&o).unwrap_err();
+    assert!(err.to_string().contains("cannot grow"), "{err}");
 }

@@ -85,6 +85,15 @@ pub struct TrainArgs {
     /// use them before the rate pulls them to zero; 0 counts them fully at once.
     #[arg(long, default_value_t = 0, value_name = "STEPS")]
     latent_warmup: u64,
+    /// Train only the encoder side (analysis and hyper-analysis) of a trained model (--init or
+    /// --resume); the decoder, the priors and their tables stay exactly as they are, so decode
+    /// time and decoded files' format do not change.
+    #[arg(long)]
+    encoder_only: bool,
+    /// With --encoder-only: count the rates of the rounded values the codec codes instead of the
+    /// noisy stand-in used to train the priors.
+    #[arg(long, requires = "encoder_only")]
+    rounded_rate: bool,
     /// Print plain log lines instead of a progress bar.
     #[arg(long)]
     log: bool,
@@ -130,6 +139,8 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         balance: a.balance,
         hidden_channels: a.hidden_channels,
         latent_warmup: a.latent_warmup,
+        encoder_only: a.encoder_only,
+        rounded_rate: a.rounded_rate,
         progress: !a.log,
     };
     kiln::train::train(&opts)?;

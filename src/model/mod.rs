@@ -115,6 +115,20 @@ pub struct TrainOutput {
     pub bits_z: Tensor,
 }
 
+/// Whether the weight `name` is used only by the encoder: the analysis `g_a` and the
+/// hyper-analysis `h_a`. Everything else (synthesis, hyper-synthesis, gains, the hyper-latent
+/// prior) shapes what the decoder computes or the tables it reads.
+///
+/// ```
+/// assert!(kiln::model::is_encoder_weight("g_a.0.weight"));
+/// assert!(kiln::model::is_encoder_weight("h_a.4.bias"));
+/// assert!(!kiln::model::is_encoder_weight("h_s.0.weight"));
+/// assert!(!kiln::model::is_encoder_weight("gain.y"));
+/// ```
+pub fn is_encoder_weight(name: &str) -> bool {
+    name.starts_with("g_a.") || name.starts_with("h_a.")
+}
+
 /// The smallest probability a rate term assigns (caps a symbol's cost at about 30 bits).
 pub(crate) const LIKELIHOOD_FLOOR: f64 = 1e-9;
 
@@ -212,17 +226,49 @@ impl Model {
         noise_y: &Tensor,
         noise_z: &Tensor,
     ) -> Result<TrainOutput> {
+        self.forward_with(x, anchor, weight, Some((noise_y, noise_z)))
+    }
+
+    /// Like [`Model::forward_train`], but the rates are those of the values the codec would
+    /// code: `round(z)` and `round(y − μ)`, gradients passed straight through the rounding.
+    ///
+    /// With the priors fixed this is the real code length (up to the float hyper-synthesis), the
+    /// objective encoder-side refinement ([`crate::refine`]) minimizes per image; it is what
+    /// encoder-only training (`kiln train --encoder-only`) minimizes over the training crops. It
+    /// cannot train the priors themselves: a rounded value's likelihood has no gradient with
+    /// respect to the density's shape between integers.
+    pub fn forward_train_rounded(&self, x: &Tensor, anchor: &Tensor, weight: &Tensor) -> Result<TrainOutput> {
+        self.forward_with(x, anchor, weight, None)
+    }
+
+    fn forward_with(
+        &self,
+        x: &Tensor,
+        anchor: &Tensor,
+        weight: &Tensor,
+        noise: Option<(&Tensor, &Tensor)>,
+    ) -> Result<TrainOutput> {
         let g = &self.gains;
         let y = self.g_a.forward(x)?;
         let yg = y.broadcast_mul(&GainUnits::batch(&g.y, anchor, weight)?)?;
         let z = self.h_a.forward(&yg)?;
         let zg = z.broadcast_mul(&GainUnits::batch(&g.z, anchor, weight)?)?;
-        let lik_z = self.prior.likelihood(&(&zg + noise_z)?)?.clamp(LIKELIHOOD_FLOOR, 1.0)?;
-        let z_hat = ste_round(&zg)?.broadcast_mul(&GainUnits::batch(&g.z_inv, anchor, weight)?)?;
+        let z_rounded = ste_round(&zg)?;
+        let z_rate = match noise {
+            Some((_, noise_z)) => (&zg + noise_z)?,
+            None => z_rounded.clone(),
+        };
+        let lik_z = self.prior.likelihood(&z_rate)?.clamp(LIKELIHOOD_FLOOR, 1.0)?;
+        let z_hat = z_rounded.broadcast_mul(&GainUnits::batch(&g.z_inv, anchor, weight)?)?;
         let (mu, log_scale) = self.h_s.forward_split(&z_hat)?;
         let sigma = log_scale.clamp(SCALE_MIN.ln(), SCALE_MAX.ln())?.exp()?;
-        let lik_y = gaussian_likelihood(&((&yg + noise_y)? - &mu)?, &sigma)?;
-        let y_hat = (ste_round(&(&yg - &mu)?)? + &mu)?;
+        let residual = ste_round(&(&yg - &mu)?)?;
+        let y_rate = match noise {
+            Some((noise_y, _)) => ((&yg + noise_y)? - &mu)?,
+            None => residual.clone(),
+        };
+        let lik_y = gaussian_likelihood(&y_rate, &sigma)?;
+        let y_hat = (residual + &mu)?;
         let x_hat = self.g_s.forward(&y_hat.broadcast_mul(&GainUnits::batch(&g.y_inv, anchor, weight)?)?)?;
         let bits = |lik: &Tensor| -> candle_core::Result<Tensor> {
             let b = lik.dim(0)?;

@@ -27,7 +27,7 @@ use crate::image_io::write_atomic;
 use crate::metrics::psnr;
 use crate::model::config::HYPER_STRIDE;
 use crate::model::gain::{GAIN_TABLES, retarget_rows};
-use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix};
+use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix, is_encoder_weight};
 use checkpoint::{CheckpointMeta, LatentWarmup};
 use data::ImageSet;
 pub use distortion::Distortion;
@@ -103,6 +103,14 @@ pub struct TrainOptions {
     /// `α = 0.5` gives every trade-off point a similar share. Each crop still minimises its own
     /// `bpp + λ·D`: the weight only changes how the shared weights divide their capacity.
     pub balance: f64,
+    /// Update only the encoder-side weights ([`crate::model::is_encoder_weight`]): the decoder,
+    /// its priors and their tables stay bit-for-bit as they are. Refused for a new model and
+    /// together with options that change the model's shape or anchors.
+    pub encoder_only: bool,
+    /// Count the rates of the rounded values the codec codes ([`Model::forward_train_rounded`])
+    /// instead of the noisy stand-in. Only meaningful with fixed priors (`encoder_only`): the
+    /// priors themselves get no useful gradient from it.
+    pub rounded_rate: bool,
     /// Show a progress bar.
     pub progress: bool,
 }
@@ -227,6 +235,13 @@ fn adapt(
         config.lambdas = new.clone();
         changed = true;
     }
+    if changed && o.encoder_only {
+        return Err(KilnError::InvalidArgument(
+            "--encoder-only keeps the decoder as it is, so the model cannot grow or change its anchors in the same run\n\
+             hint: drop --latent-channels, --hidden-channels and --lambdas, or run them first without --encoder-only"
+                .into(),
+        ));
+    }
     Ok((changed, warmup))
 }
 
@@ -300,6 +315,17 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
             o.patch
         )));
     }
+    if o.rounded_rate && !o.encoder_only {
+        return Err(KilnError::InvalidArgument(
+            "--rounded-rate gives the priors no gradient, so it needs fixed priors\nhint: add --encoder-only".into(),
+        ));
+    }
+    if o.encoder_only && matches!(o.init, Init::Fresh(_)) && o.resume.is_none() {
+        return Err(KilnError::InvalidArgument(
+            "--encoder-only trains the encoder of an existing model\nhint: add --init MODEL or --resume CHECKPOINT"
+                .into(),
+        ));
+    }
     if o.batch == 0 || o.steps == 0 || o.lr.is_nan() || o.lr <= 0.0 {
         return Err(KilnError::InvalidArgument("--batch, --steps and --lr must be positive".into()));
     }
@@ -354,7 +380,11 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         let wts = Tensor::new(wts, &Device::Cpu)?;
         let lam = Tensor::new(lam, &Device::Cpu)?;
         let bal = Tensor::new(bal, &Device::Cpu)?;
-        let out = run.model.forward_train(&x, &idx, &wts, &ny, &nz)?;
+        let out = if o.rounded_rate {
+            run.model.forward_train_rounded(&x, &idx, &wts)?
+        } else {
+            run.model.forward_train(&x, &idx, &wts, &ny, &nz)?
+        };
         let pixels = (p * p) as f64;
         // Bits in the objective: a grown latent's new channels count with their warm-up weight.
         let bits_y = match run.warmup {
@@ -379,7 +409,14 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
             return Err(KilnError::Diverged { step: run.step, loss: loss_v });
         }
         let grads = loss.backward()?;
-        let grads = run.adam.gradients(&grads)?;
+        let mut grads = run.adam.gradients(&grads)?;
+        if o.encoder_only {
+            for (g, name) in grads.iter_mut().zip(run.adam.names()) {
+                if !is_encoder_weight(name) {
+                    *g = None;
+                }
+            }
+        }
         let norm = Adam::grad_norm(&grads);
         let scale = if norm > o.clip { o.clip / norm } else { 1.0 };
         run.adam.step(&grads, learning_rate(o, run.step), scale)?;

@@ -50,6 +50,11 @@ impl Adam {
         Ok(Adam { vars, m, v, t: 0, config })
     }
 
+    /// The variables' names, in the order of [`Adam::gradients`].
+    pub fn names(&self) -> impl Iterator<Item = &str> {
+        self.vars.iter().map(|(n, _)| n.as_str())
+    }
+
     /// The gradients of every variable that has one, flattened.
     pub fn gradients(&self, grads: &GradStore) -> Result<Vec<Option<Vec<f32>>>> {
         self.vars.iter().map(|(_, var)| grads.get(var.as_tensor()).map(values).transpose()).collect()
