@@ -1,5 +1,7 @@
 //! Plots a `kiln train --log` log: validation PSNR and bpp at qualities 1, 50 and 100 per
 //! validation step, and the training loss averaged over each 1000 steps, as SVG and PNG.
+//! Where the log resumes at an earlier step (a phase tried and restarted), the later lines of
+//! the abandoned branch are dropped: the plot shows the history of the latest model.
 //! `cargo run --release --example plot_training -- models/train-default.log docs/default-training`
 //! writes `docs/default-training-{val,loss}.{svg,png}`.
 
@@ -18,10 +20,22 @@ fn main() -> anyhow::Result<()> {
     let text = std::fs::read_to_string(log)?;
     // "validation at step N: q1: B bpp P dB, q50: ..., q100: ..."
     let mut val: Vec<Curve> = Vec::new();
-    // "step N/T  loss L  ...": mean loss over each block of 1000 steps.
-    let mut blocks: std::collections::BTreeMap<u64, (f64, usize)> = Default::default();
+    // "step N/T  loss L  ...": (step, loss), averaged per block of 1000 steps below.
+    let mut losses: Vec<(u64, f64)> = Vec::new();
     for line in text.lines() {
-        if let Some(rest) = line.strip_prefix("validation at step ") {
+        // "resuming from CKPT at step S": what the log holds after step S belongs to a branch
+        // that this resume abandoned (a phase tried and restarted), so the plot follows the
+        // branch that led to the latest model.
+        if let Some(rest) = line.strip_prefix("resuming from ") {
+            let Some(step) = rest.rsplit_once(" at step ").and_then(|(_, s)| s.trim().parse::<f64>().ok()) else {
+                continue;
+            };
+            for v in &mut val {
+                v.1.retain(|p| p.0 <= step);
+                v.2.retain(|p| p.0 <= step);
+            }
+            losses.retain(|l| l.0 as f64 <= step);
+        } else if let Some(rest) = line.strip_prefix("validation at step ") {
             let Some((step, points)) = rest.split_once(": ") else { continue };
             let step: f64 = step.parse()?;
             for part in points.split(", ") {
@@ -45,12 +59,16 @@ fn main() -> anyhow::Result<()> {
                 let step: u64 = step.split('/').next().unwrap_or("0").parse()?;
                 let loss: f64 = loss.parse()?;
                 if loss.is_finite() {
-                    let e = blocks.entry(step.div_ceil(1000) * 1000).or_default();
-                    e.0 += loss;
-                    e.1 += 1;
+                    losses.push((step, loss));
                 }
             }
         }
+    }
+    let mut blocks: std::collections::BTreeMap<u64, (f64, usize)> = Default::default();
+    for (step, loss) in losses {
+        let e = blocks.entry(step.div_ceil(1000) * 1000).or_default();
+        e.0 += loss;
+        e.1 += 1;
     }
     anyhow::ensure!(!val.is_empty() || !blocks.is_empty(), "{log}: no training or validation lines");
     let series = |pick: fn(&Curve) -> &Vec<(f64, f64)>| {

@@ -30,9 +30,11 @@ pub struct ModelConfig {
 }
 
 impl Default for ModelConfig {
-    /// The shipped configuration: N = 64, M = 96, chosen with `tools/compare-configs` (equal
-    /// training budgets from scratch): 48/64 codes better after 3000 steps, 64/96 after 8000
-    /// (BD-rate vs JPEG +33.8% vs +37.1%) at 1.36× its decode time; numbers in the README.
+    /// The configuration the default model was trained from: N = 64, M = 96, chosen with
+    /// `tools/compare-configs` (equal training budgets from scratch): 48/64 codes better after
+    /// 3000 steps, 64/96 after 8000 (BD-rate vs JPEG +33.8% vs +37.1%) at 1.36× its decode
+    /// time; numbers in the README. The shipped model grew its latent to M = 192 at step 72 000
+    /// (`kiln train --latent-channels`).
     fn default() -> Self {
         ModelConfig {
             n: 64,
