@@ -91,7 +91,8 @@ pub struct TrainArgs {
     #[arg(long)]
     encoder_only: bool,
     /// With --encoder-only: count the rates of the rounded values the codec codes instead of the
-    /// noisy stand-in used to train the priors.
+    /// noisy stand-in used to train the priors. Experimental: on the default model it made
+    /// coding worse within 1000 steps (DEVELOPERS.md).
     #[arg(long, requires = "encoder_only")]
     rounded_rate: bool,
     /// Print plain log lines instead of a progress bar.
