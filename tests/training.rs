@@ -1,6 +1,6 @@
 //! Training end to end on a tiny configuration: loss goes down, export round-trips, resume
-//! continues where the run stopped, a resume can widen the latent or add anchors, and the
-//! model's rate estimate matches the coded size.
+//! continues where the run stopped, a resume can widen the latent or add anchors, the model's
+//! rate estimate matches the coded size, and encoder-only training leaves the decoder alone.
 
 mod common;
 

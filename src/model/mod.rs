@@ -233,10 +233,10 @@ impl Model {
     /// code: `round(z)` and `round(y − μ)`, gradients passed straight through the rounding.
     ///
     /// With the priors fixed this is the real code length (up to the float hyper-synthesis), the
-    /// objective encoder-side refinement ([`crate::refine`]) minimizes per image; it is what
-    /// encoder-only training (`kiln train --encoder-only`) minimizes over the training crops. It
-    /// cannot train the priors themselves: a rounded value's likelihood has no gradient with
-    /// respect to the density's shape between integers.
+    /// objective encoder-side refinement ([`crate::refine`]) minimizes per image; encoder-only
+    /// training minimizes it over the training crops with `kiln train --encoder-only
+    /// --rounded-rate`. It cannot train the priors themselves: a rounded value's likelihood has
+    /// no gradient with respect to the density's shape between integers.
     pub fn forward_train_rounded(&self, x: &Tensor, anchor: &Tensor, weight: &Tensor) -> Result<TrainOutput> {
         self.forward_with(x, anchor, weight, None)
     }
