@@ -110,8 +110,9 @@ pub struct TrainOptions {
     /// Count the rates of the rounded values the codec codes ([`Model::forward_train_rounded`])
     /// instead of the noisy stand-in. Only meaningful with fixed priors (`encoder_only`): the
     /// priors themselves get no useful gradient from it. Experimental: on the default model it
-    /// raised the coded rate at equal PSNR within 1000 steps (the hyper-analysis follows the
-    /// straight-through gradient of the rounded hyper-latent), where the noisy rates lowered it.
+    /// raised the coded rate at equal PSNR within 1000 steps, where the noisy rates lowered it
+    /// (likely cause, not isolated: the hyper-analysis follows the straight-through gradient of
+    /// the rounded hyper-latent).
     pub rounded_rate: bool,
     /// Show a progress bar.
     pub progress: bool,
