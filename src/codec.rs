@@ -20,7 +20,7 @@ use crate::entropy::gaussian::{SCALE_MAX, SCALE_MIN, scale_index};
 use crate::error::{KilnError, Result};
 use crate::image_io::Picture;
 use crate::kernels::{HyperSynthesisFixed, PriorParameters, SimdMode};
-use crate::model::config::{HYPER_STRIDE, LATENT_STRIDE, check_quality};
+use crate::model::config::check_quality;
 use crate::model::gain::GainVectors;
 use crate::model::{Model, ModelFile, hex_prefix};
 use crate::refine::{RefineConfig, RefineTarget, refine};
@@ -91,11 +91,13 @@ impl Encoded {
 /// How much of the padded tile the coded latent covers.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum LatentLayout {
-    /// The latent covers the tile edge-padded to a multiple of 16 (`⌈h/16⌉ × ⌈w/16⌉`); it is
-    /// edge-padded to a multiple of 4 for the hyper-analysis only, and those padding elements are
-    /// not coded. What [`Codec::encode`] writes.
+    /// The latent covers the tile edge-padded to a multiple of the latent stride `s`
+    /// (`⌈h/s⌉ × ⌈w/s⌉`; `s` = 16 for four stages); it is edge-padded to a multiple of 4 for the
+    /// hyper-analysis only, and those padding elements are not coded. What [`Codec::encode`]
+    /// writes.
     Cropped,
-    /// The latent covers the tile edge-padded to a multiple of 64 (`4·hz × 4·wz`), padding rows
+    /// The latent covers the tile edge-padded to a multiple of the hyper stride `4s`
+    /// (`4·hz × 4·wz`), padding rows
     /// and all: what encoders wrote before the cropped layout. Kept so that tests can check that
     /// such files still decode; it cost 9–10% more bits on a 640×400 validation photograph.
     Padded64,
@@ -122,11 +124,18 @@ fn tile_tensor(pic: &Picture, rect: container::Rect, multiple: usize) -> Result<
     Ok(Tensor::from_vec(data, (1, 3, ph, pw), &Device::Cpu)?)
 }
 
-/// Latent `(hy, wy)` and hyper-latent `(hz, wz)` sizes of a `w × h` tile: the latent covers the
-/// tile at stride 16, the hyper-latent covers the latent at stride 4.
-pub fn tile_latent_sizes(w: usize, h: usize) -> ((usize, usize), (usize, usize)) {
-    let (hy, wy) = (h.div_ceil(LATENT_STRIDE), w.div_ceil(LATENT_STRIDE));
-    ((hy, wy), (hy.div_ceil(HYPER_STRIDE / LATENT_STRIDE), wy.div_ceil(HYPER_STRIDE / LATENT_STRIDE)))
+/// Latent `(hy, wy)` and hyper-latent `(hz, wz)` sizes of a `w × h` tile for a model with latent
+/// stride `stride` ([`crate::ModelConfig::latent_stride`]): the latent covers the tile at that
+/// stride, the hyper-latent covers the latent at stride 4.
+///
+/// ```
+/// use kiln::codec::tile_latent_sizes;
+/// assert_eq!(tile_latent_sizes(100, 40, 16), ((3, 7), (1, 2)));
+/// assert_eq!(tile_latent_sizes(100, 40, 8), ((5, 13), (2, 4)));
+/// ```
+pub fn tile_latent_sizes(w: usize, h: usize, stride: usize) -> ((usize, usize), (usize, usize)) {
+    let (hy, wy) = (h.div_ceil(stride), w.div_ceil(stride));
+    ((hy, wy), (hy.div_ceil(4), wy.div_ceil(4)))
 }
 
 /// The top-left `tw × th` of three `h × w` planes in `[0, 1]` as interleaved 8-bit RGB
@@ -146,7 +155,7 @@ fn planes_to_rgb8(planes: &[f32], h: usize, w: usize, tw: usize, th: usize) -> V
 
 /// Edge-pads a latent `(1, M, hy, wy)` to `(1, M, 4·hz, 4·wz)` for the hyper-analysis.
 fn pad_latent(y: &Tensor, hz: usize, wz: usize) -> Result<Tensor> {
-    let r = HYPER_STRIDE / LATENT_STRIDE;
+    let r = 4;
     let (_, _, hy, wy) = y.dims4()?;
     Ok(y.pad_with_same(2, 0, hz * r - hy)?.pad_with_same(3, 0, wz * r - wy)?)
 }
@@ -258,11 +267,12 @@ impl Codec {
         layout: LatentLayout,
     ) -> Result<(TileRecord, TileStreams, (f64, f64))> {
         let model = &self.file.model;
-        let multiple = if layout == LatentLayout::Cropped { LATENT_STRIDE } else { HYPER_STRIDE };
+        let stride = model.config.latent_stride();
+        let multiple = if layout == LatentLayout::Cropped { stride } else { model.config.hyper_stride() };
         let image = tile_tensor(pic, rect, multiple)?;
         let y = scale_channels(&model.g_a.forward(&image)?, &gains.y)?;
         let (_, m, hy, wy) = y.dims4()?;
-        let (_, (hz, wz)) = tile_latent_sizes(rect.2 as usize, rect.3 as usize);
+        let (_, (hz, wz)) = tile_latent_sizes(rect.2 as usize, rect.3 as usize, stride);
         let z = scale_channels(&model.h_a.forward(&pad_latent(&y, hz, wz)?)?, &gains.z)?;
         let (y, z) = match (&self.frozen, self.refine.iterations) {
             (Some(frozen), 1..) => {
@@ -311,9 +321,10 @@ impl Codec {
         let (tw, th) = container::choose_tile_size(pic.width, pic.height);
         let (mut by, mut bz) = (0.0, 0.0);
         for rect in container::tile_grid(pic.width, pic.height, tw, th) {
-            let y = scale_channels(&model.g_a.forward(&tile_tensor(pic, rect, LATENT_STRIDE)?)?, &gains.y)?;
+            let stride = model.config.latent_stride();
+            let y = scale_channels(&model.g_a.forward(&tile_tensor(pic, rect, stride)?)?, &gains.y)?;
             let (_, _, hy, wy) = y.dims4()?;
-            let (_, (hz, wz)) = tile_latent_sizes(rect.2 as usize, rect.3 as usize);
+            let (_, (hz, wz)) = tile_latent_sizes(rect.2 as usize, rect.3 as usize, stride);
             let z = scale_channels(&model.h_a.forward(&pad_latent(&y, hz, wz)?)?, &gains.z)?.round()?;
             let z_hat: Vec<i32> = z.flatten_all()?.to_vec1::<f32>()?.iter().map(|&v| v as i32).collect();
             let prior = crop_prior(self.prior(&z_hat, hz, wz, &gains), hy, wy);
@@ -377,9 +388,10 @@ impl Codec {
     ) -> Result<Vec<u8>> {
         let cfg = &self.file.model.config;
         let (tw, th) = (rect.2 as usize, rect.3 as usize);
-        let ((hy, wy), (hz, wz)) = tile_latent_sizes(tw, th);
+        let stride = cfg.latent_stride();
+        let ((hy, wy), (hz, wz)) = tile_latent_sizes(tw, th, stride);
         // Files written before the latent was cropped to the tile code the latent of the image
-        // padded to a multiple of 64, i.e. exactly 4·hz × 4·wz; both layouts decode.
+        // padded to a multiple of the hyper stride, i.e. exactly 4·hz × 4·wz; both layouts decode.
         let (hy, wy) = match record.latent {
             [m, h, w] if m as usize == cfg.m && (h as usize, w as usize) == (hy, wy) => (hy, wy),
             [m, h, w] if m as usize == cfg.m && (h as usize, w as usize) == (4 * hz, 4 * wz) => (4 * hz, 4 * wz),
@@ -408,7 +420,7 @@ impl Codec {
         }
         dec_y.finish()?;
         let y = Tensor::from_vec(y_hat, (1, cfg.m, hy, wy), &Device::Cpu)?;
-        let x = self.file.model.g_s.forward_decode(&y)?; // (1, 3, 16hy, 16wy)
-        Ok(crate::kernels::conv::with_f32(&x, |x| Ok(planes_to_rgb8(x, 16 * hy, 16 * wy, tw, th)))?)
+        let x = self.file.model.g_s.forward_decode(&y)?; // (1, 3, s·hy, s·wy)
+        Ok(crate::kernels::conv::with_f32(&x, |x| Ok(planes_to_rgb8(x, stride * hy, stride * wy, tw, th)))?)
     }
 }

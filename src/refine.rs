@@ -76,7 +76,7 @@ pub struct Refined {
 /// The image a tile is refined against, and the coding point.
 #[derive(Debug, Clone, Copy)]
 pub struct RefineTarget<'a> {
-    /// The tile, `(1, 3, 16·hy, 16·wy)` in `[0, 1]`, edge-padded.
+    /// The tile, `(1, 3, s·hy, s·wy)` in `[0, 1]` for the latent stride `s`, edge-padded.
     pub image: &'a Tensor,
     /// The tile's own width and height in pixels (the rest is padding and is not scored).
     pub size: (usize, usize),

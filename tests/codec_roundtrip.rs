@@ -18,6 +18,33 @@ fn round_trip_keeps_dimensions_for_odd_sizes_and_grey() {
 }
 
 #[test]
+fn a_three_stage_model_codes_a_stride_8_latent_and_round_trips() {
+    use kiln::{Codec, Model, ModelConfig, ModelFile};
+    let config = ModelConfig { stages: 3, ..ModelConfig::tiny() };
+    let bytes = Model::new(config, 9).unwrap().export(&Default::default()).unwrap();
+    let file = ModelFile::from_bytes(&bytes).unwrap();
+    assert_eq!((file.model.config.stages, file.model.config.latent_stride()), (3, 8));
+    let codec = Codec::new(file).unwrap();
+    for (w, h, c) in [(1, 1, 3), (90, 70, 3), (41, 130, 1)] {
+        let pic = synthetic_picture(w, h, c, 4);
+        let enc = codec.encode(&pic, 60.0).unwrap();
+        let header = kiln::container::read_header(&enc.bytes).unwrap();
+        // ⌈h/8⌉ × ⌈w/8⌉ latent positions, the hyper-latent at a further stride 4.
+        let (hy, wy) = (h.div_ceil(8) as u16, w.div_ceil(8) as u16);
+        assert_eq!(header.tiles[0].latent, [12, hy, wy]);
+        assert_eq!(header.tiles[0].hyper, [8, hy.div_ceil(4), wy.div_ceil(4)]);
+        let dec = codec.decode(&enc.bytes).unwrap();
+        assert_eq!((dec.width, dec.height, dec.channels), (w, h, c));
+        assert_eq!(dec, codec.decode(&enc.bytes).unwrap());
+    }
+    // A four-stage model's file does not mention stages: files from before the field are the
+    // same bytes, and read back as four stages.
+    let four = kiln::ModelFile::from_bytes(&common::tiny_model_bytes(9)).unwrap();
+    assert_eq!(four.model.config.stages, 4);
+    assert!(!String::from_utf8_lossy(&common::tiny_model_bytes(9)).contains("stages"));
+}
+
+#[test]
 fn files_with_the_earlier_padded_latent_still_decode() {
     let codec = tiny_codec(6);
     let pic = synthetic_picture(90, 70, 3, 2);

@@ -53,6 +53,7 @@ fn model_json(bytes: &[u8]) -> anyhow::Result<serde_json::Value> {
         "bytes": f.size,
         "fingerprint": hex_prefix(&f.fingerprint, 32),
         "config": c,
+        "latent_stride": c.latent_stride(),
         "anchors": anchors,
         "training": f.training,
         "encoder_flops_per_pixel": 2.0 * enc,

@@ -80,6 +80,11 @@ pub struct TrainArgs {
     /// what the old one did.
     #[arg(long, value_name = "N")]
     hidden_channels: Option<usize>,
+    /// Stride-2 stages of the transforms, 2 to 4 (latent stride 4, 8 or 16): for a new model it
+    /// replaces the config's; with --init or --resume a model one stage deeper is cut down to it
+    /// (a start for training, not the same codec).
+    #[arg(long)]
+    stages: Option<usize>,
     /// With --latent-channels: phase the new channels' bits into the loss over this many steps
     /// (not counted for the first half, then rising linearly), so that the synthesis learns to
     /// use them before the rate pulls them to zero; 0 counts them fully at once.
@@ -139,6 +144,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         latent_channels: a.latent_channels,
         balance: a.balance,
         hidden_channels: a.hidden_channels,
+        stages: a.stages,
         latent_warmup: a.latent_warmup,
         encoder_only: a.encoder_only,
         rounded_rate: a.rounded_rate,

@@ -7,8 +7,9 @@ use super::config::ModelConfig;
 use super::gdn::{Gdn, GdnDirection};
 use super::layers::{Conv, ConvConfig};
 
-/// `g_a`: four stride-2 convolutions with GDN between them; weights `g_a.{0,2,4,6}` (conv) and
-/// `g_a.{1,3,5}` (GDN). Input `(B, 3, H, W)` in `[0, 1]`, output `(B, M, H/16, W/16)`.
+/// `g_a`: `stages` stride-2 convolutions with GDN between them; weights `g_a.{0,2,…}` (conv)
+/// and `g_a.{1,3,…}` (GDN): `g_a.{0,2,4,6}` and `g_a.{1,3,5}` for four stages. Input
+/// `(B, 3, H, W)` in `[0, 1]`, output `(B, M, H/s, W/s)` for the latent stride `s = 2^stages`.
 #[derive(Debug, Clone)]
 pub struct Analysis {
     convs: Vec<Conv>,
@@ -18,14 +19,14 @@ pub struct Analysis {
 impl Analysis {
     /// Builds `g_a` under `vb` (use `vb.pp("g_a")`).
     pub fn new(c: &ModelConfig, vb: VarBuilder) -> Result<Self> {
-        let chans = [3, c.n, c.n, c.n, c.m];
+        let chans = channels(c);
         let mut convs = Vec::new();
         let mut gdns = Vec::new();
-        for i in 0..4 {
+        for i in 0..c.stages {
             let cfg =
                 ConvConfig { in_channels: chans[i], out_channels: chans[i + 1], kernel: c.analysis_kernel, stride: 2 };
             convs.push(Conv::new(cfg, vb.pp((2 * i).to_string()))?);
-            if i < 3 {
+            if i + 1 < c.stages {
                 gdns.push(Gdn::new(c.n, GdnDirection::Forward, vb.pp((2 * i + 1).to_string()))?);
             }
         }
@@ -35,17 +36,25 @@ impl Analysis {
     /// Multiply-adds per input pixel (GDN counted as its C×C matrix product).
     pub fn macs_per_pixel(c: &ModelConfig) -> f64 {
         let k2 = (c.analysis_kernel * c.analysis_kernel) as f64;
-        let chans = [3, c.n, c.n, c.n, c.m];
+        let chans = channels(c);
         let mut macs = 0.0;
-        for i in 0..4 {
+        for i in 0..c.stages {
             let positions = 1.0 / 4f64.powi(i as i32 + 1);
             macs += positions * k2 * (chans[i] * chans[i + 1]) as f64;
-            if i < 3 {
+            if i + 1 < c.stages {
                 macs += positions * (c.n * c.n) as f64;
             }
         }
         macs
     }
+}
+
+/// Channel counts along `g_a`: 3, then `N` after every stage but the last, then `M`.
+fn channels(c: &ModelConfig) -> Vec<usize> {
+    let mut chans = vec![3];
+    chans.extend(std::iter::repeat_n(c.n, c.stages - 1));
+    chans.push(c.m);
+    chans
 }
 
 impl Module for Analysis {
@@ -62,7 +71,7 @@ impl Module for Analysis {
 }
 
 /// `h_a`: 3×3 stride-1 conv, ReLU, two 5×5 stride-2 convs with a ReLU between; weights
-/// `h_a.{0,2,4}`. Output `(B, Nz, H/64, W/64)`.
+/// `h_a.{0,2,4}`. Output `(B, Nz, H/h, W/h)` for the hyper stride `h = 4 · latent stride`.
 #[derive(Debug, Clone)]
 pub struct HyperAnalysis {
     convs: [Conv; 3],
@@ -81,7 +90,7 @@ impl HyperAnalysis {
     /// Multiply-adds per input pixel of the image.
     pub fn macs_per_pixel(c: &ModelConfig) -> f64 {
         let hh = c.hyper_hidden as f64;
-        let y = 1.0 / 256.0;
+        let y = 1.0 / (c.latent_stride() * c.latent_stride()) as f64;
         y * 9.0 * c.m as f64 * hh + y / 4.0 * 25.0 * hh * hh + y / 16.0 * 25.0 * hh * c.nz as f64
     }
 }

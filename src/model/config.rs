@@ -27,6 +27,19 @@ pub struct ModelConfig {
     pub synthesis_kernel: usize,
     /// Rate–distortion weights λ of the trade-off anchors, increasing (loss = bpp + λ·MSE₂₅₅).
     pub lambdas: Vec<f64>,
+    /// Stride-2 layers in the analysis and in the synthesis (2 to 4): the latent has stride
+    /// `2^stages` ([`ModelConfig::latent_stride`]). Model files without the field have 4; a
+    /// model with 4 does not write it, so its file is what it was before the field existed.
+    #[serde(default = "four_stages", skip_serializing_if = "is_four_stages")]
+    pub stages: usize,
+}
+
+fn four_stages() -> usize {
+    4
+}
+
+fn is_four_stages(s: &usize) -> bool {
+    *s == 4
 }
 
 impl Default for ModelConfig {
@@ -44,14 +57,14 @@ impl Default for ModelConfig {
             analysis_kernel: 5,
             synthesis_kernel: 3,
             lambdas: vec![0.0025, 0.005, 0.01, 0.02, 0.04, 0.08],
+            stages: 4,
         }
     }
 }
 
-/// Total downsampling factor of the analysis transform (four stride-2 layers).
-pub const LATENT_STRIDE: usize = 16;
-/// Total downsampling factor of analysis plus hyper-analysis (two more stride-2 layers).
-pub const HYPER_STRIDE: usize = 64;
+/// The largest hyper-latent stride of any valid configuration (four stages, then the
+/// hyper-analysis' two stride-2 layers): sizes that are multiples of it suit every model.
+pub const HYPER_STRIDE_MAX: usize = 64;
 
 /// Lowest accepted quality.
 pub const QUALITY_MIN: f32 = 1.0;
@@ -69,6 +82,7 @@ impl ModelConfig {
             analysis_kernel: 5,
             synthesis_kernel: 3,
             lambdas: vec![0.005, 0.02, 0.08],
+            stages: 4,
         }
     }
 
@@ -87,6 +101,9 @@ impl ModelConfig {
         if self.analysis_kernel > 9 || self.synthesis_kernel > 9 {
             return bad("kernel sizes above 9 are not supported");
         }
+        if !(2..=4).contains(&self.stages) {
+            return bad("stages must be 2, 3 or 4 (latent stride 4, 8 or 16)");
+        }
         if self.lambdas.len() < 2 || self.lambdas.len() > 32 {
             return bad("between 2 and 32 trade-off anchors are needed");
         }
@@ -94,6 +111,17 @@ impl ModelConfig {
             return bad("lambdas must be positive and increasing");
         }
         Ok(())
+    }
+
+    /// Downsampling factor of the analysis transform: `2^stages` (16 for four stages).
+    pub fn latent_stride(&self) -> usize {
+        1 << self.stages
+    }
+
+    /// Downsampling factor of analysis plus hyper-analysis (two more stride-2 layers):
+    /// `4 · latent_stride`.
+    pub fn hyper_stride(&self) -> usize {
+        4 * self.latent_stride()
     }
 
     /// Number of trade-off anchors.

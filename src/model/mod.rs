@@ -212,7 +212,8 @@ impl Model {
         Ok(())
     }
 
-    /// Training forward pass on `x` `(B, 3, H, W)` in `[0, 1]`, `H` and `W` multiples of 64.
+    /// Training forward pass on `x` `(B, 3, H, W)` in `[0, 1]`, `H` and `W` multiples of the
+    /// hyper stride ([`ModelConfig::hyper_stride`], 64 for four stages).
     ///
     /// `anchor` `(B,)` u32 and `weight` `(B,)` f32 give each sample's quality position;
     /// `noise_y`, `noise_z` are uniform in `[−½, ½)` with the shapes of `y` and `z` (passed in so

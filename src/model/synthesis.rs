@@ -12,8 +12,9 @@ use super::config::ModelConfig;
 use super::gdn::{Gdn, GdnDirection};
 use super::layers::{Conv, ConvConfig, SubpixelConv};
 
-/// `g_s`: four sub-pixel upsampling layers with inverse GDN between them; weights
-/// `g_s.{0,2,4,6}` (convs) and `g_s.{1,3,5}` (IGDN). Output `(B, 3, 16h, 16w)` in about `[0, 1]`.
+/// `g_s`: `stages` sub-pixel upsampling layers with inverse GDN between them; weights
+/// `g_s.{0,2,…}` (convs) and `g_s.{1,3,…}` (IGDN): `g_s.{0,2,4,6}` and `g_s.{1,3,5}` for four
+/// stages. Output `(B, 3, s·h, s·w)` in about `[0, 1]` for the latent stride `s = 2^stages`.
 #[derive(Debug, Clone)]
 pub struct Synthesis {
     ups: Vec<SubpixelConv>,
@@ -23,12 +24,12 @@ pub struct Synthesis {
 impl Synthesis {
     /// Builds `g_s` under `vb` (use `vb.pp("g_s")`).
     pub fn new(c: &ModelConfig, vb: VarBuilder) -> Result<Self> {
-        let chans = [c.m, c.n, c.n, c.n, 3];
+        let chans = channels(c);
         let mut ups = Vec::new();
         let mut igdns = Vec::new();
-        for i in 0..4 {
+        for i in 0..c.stages {
             ups.push(SubpixelConv::new(chans[i], chans[i + 1], c.synthesis_kernel, vb.pp((2 * i).to_string()))?);
-            if i < 3 {
+            if i + 1 < c.stages {
                 igdns.push(Gdn::new(c.n, GdnDirection::Inverse, vb.pp((2 * i + 1).to_string()))?);
             }
         }
@@ -38,17 +39,25 @@ impl Synthesis {
     /// Multiply-adds per output pixel.
     pub fn macs_per_pixel(c: &ModelConfig) -> f64 {
         let k2 = (c.synthesis_kernel * c.synthesis_kernel) as f64;
-        let chans = [c.m, c.n, c.n, c.n, 3];
+        let chans = channels(c);
         let mut macs = 0.0;
-        for i in 0..4 {
-            let in_positions = 1.0 / 4f64.powi(4 - i as i32);
+        for i in 0..c.stages {
+            let in_positions = 1.0 / 4f64.powi((c.stages - i) as i32);
             macs += in_positions * k2 * (chans[i] * chans[i + 1] * 4) as f64;
-            if i < 3 {
+            if i + 1 < c.stages {
                 macs += in_positions * 4.0 * (c.n * c.n) as f64;
             }
         }
         macs
     }
+}
+
+/// Channel counts along `g_s`: `M`, then `N` after every stage but the last, then 3.
+fn channels(c: &ModelConfig) -> Vec<usize> {
+    let mut chans = vec![c.m];
+    chans.extend(std::iter::repeat_n(c.n, c.stages - 1));
+    chans.push(3);
+    chans
 }
 
 impl Synthesis {
@@ -130,7 +139,7 @@ impl HyperSynthesis {
     /// Multiply-adds per image pixel.
     pub fn macs_per_pixel(c: &ModelConfig) -> f64 {
         let hh = c.hyper_hidden as f64;
-        let z = 1.0 / 4096.0;
+        let z = 1.0 / (c.hyper_stride() * c.hyper_stride()) as f64;
         z * 9.0 * c.nz as f64 * hh * 4.0 + z * 4.0 * 9.0 * hh * hh * 4.0 + z * 16.0 * 9.0 * hh * 2.0 * c.m as f64
     }
 

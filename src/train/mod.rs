@@ -10,6 +10,7 @@ pub mod checkpoint;
 pub mod data;
 pub mod distortion;
 pub mod optim;
+pub mod stages;
 pub mod widen;
 
 use std::collections::HashMap;
@@ -25,7 +26,7 @@ use crate::codec::Codec;
 use crate::error::{KilnError, Result};
 use crate::image_io::write_atomic;
 use crate::metrics::psnr;
-use crate::model::config::HYPER_STRIDE;
+use crate::model::config::HYPER_STRIDE_MAX;
 use crate::model::gain::{GAIN_TABLES, retarget_rows};
 use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix, is_encoder_weight};
 use checkpoint::{CheckpointMeta, LatentWarmup};
@@ -93,6 +94,11 @@ pub struct TrainOptions {
     /// ([`widen::widen_hidden`]: the grown model computes exactly what the old one did). `None`
     /// keeps the model's own.
     pub hidden_channels: Option<usize>,
+    /// Stride-2 stages of the transforms (latent stride `2^stages`). For a new model it replaces
+    /// the configuration's; with `init` or `resume` a model one stage deeper is cut down to it
+    /// ([`stages::drop_stage`]: a start for training, not the same codec). `None` keeps the
+    /// model's own.
+    pub stages: Option<usize>,
     /// Steps over which a grown latent's new channels' bits are phased into the loss
     /// ([`LatentWarmup`]: not at all for the first half, then linearly); 0 counts them fully
     /// from the start.
@@ -207,7 +213,7 @@ fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64
 }
 
 /// Applies `o.latent_channels` (growing the latent), `o.hidden_channels` (growing the
-/// transforms) and `o.lambdas` (re-targeting the gain tables) to a model's `tensors` and
+/// transforms), `o.stages` (dropping a stage) and `o.lambdas` (re-targeting the gain tables) to a model's `tensors` and
 /// `config` at `step`; whether anything changed, and the rate warm-up of the grown channels when
 /// the latent grew. Adam moments of grown tensors grow with them (old entries keep theirs).
 fn adapt(
@@ -233,6 +239,19 @@ fn adapt(
         config.n = n;
         changed = true;
     }
+    if let Some(s) = o.stages.filter(|&s| s != config.stages) {
+        if s + 1 != config.stages {
+            return Err(KilnError::InvalidArgument(format!(
+                "--stages {s}: a trained model with {} stages can only lose one\nhint: use --stages {}",
+                config.stages,
+                config.stages.saturating_sub(1)
+            )));
+        }
+        *tensors = stages::drop_stage(tensors, config)?;
+        eprintln!("transforms cut from {} to {s} stages (latent stride {})", config.stages, 1 << s);
+        config.stages = s;
+        changed = true;
+    }
     if let Some(new) = o.lambdas.as_ref().filter(|l| **l != config.lambdas) {
         retarget_gains(tensors, &config.lambdas, new)?;
         config.lambdas = new.clone();
@@ -240,8 +259,8 @@ fn adapt(
     }
     if changed && o.encoder_only {
         return Err(KilnError::InvalidArgument(
-            "--encoder-only keeps the decoder as it is, so the model cannot grow or change its anchors in the same run\n\
-             hint: drop --latent-channels, --hidden-channels and --lambdas, or run them first without --encoder-only"
+            "--encoder-only keeps the decoder as it is, so the model cannot change its shape or anchors in the same run\n\
+             hint: drop --latent-channels, --hidden-channels, --stages and --lambdas, or run them first without --encoder-only"
                 .into(),
         ));
     }
@@ -281,6 +300,9 @@ fn start(o: &TrainOptions) -> Result<Run> {
             if let Some(n) = o.hidden_channels {
                 c.n = n;
             }
+            if let Some(s) = o.stages {
+                c.stages = s;
+            }
             (Model::new(c, o.seed)?, None)
         }
         Init::FineTune(p) => {
@@ -312,9 +334,9 @@ fn uniform_noise(rng: &mut ChaCha8Rng, shape: &[usize]) -> Result<Tensor> {
 
 /// Trains (or resumes, or fine-tunes) and exports the model to `o.out`.
 pub fn train(o: &TrainOptions) -> Result<TrainReport> {
-    if o.patch == 0 || !o.patch.is_multiple_of(HYPER_STRIDE) {
+    if o.patch == 0 || !o.patch.is_multiple_of(HYPER_STRIDE_MAX) {
         return Err(KilnError::InvalidArgument(format!(
-            "--patch {} must be a positive multiple of {HYPER_STRIDE}",
+            "--patch {} must be a positive multiple of {HYPER_STRIDE_MAX}",
             o.patch
         )));
     }
@@ -342,7 +364,7 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         )));
     }
     let val = match &o.val {
-        Some(d) => Some(ImageSet::load(std::slice::from_ref(d), HYPER_STRIDE)?),
+        Some(d) => Some(ImageSet::load(std::slice::from_ref(d), HYPER_STRIDE_MAX)?),
         None => None,
     };
     eprintln!("training on {} images ({} skipped)", data.len(), data.skipped.len());
@@ -377,8 +399,9 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
             bal.push(balance_weight(&lambdas, lambda, o.balance) as f32);
         }
         let p = o.patch;
-        let ny = uniform_noise(&mut run.rng, &[o.batch, config.m, p / 16, p / 16])?;
-        let nz = uniform_noise(&mut run.rng, &[o.batch, config.nz, p / 64, p / 64])?;
+        let (sy, sz) = (config.latent_stride(), config.hyper_stride());
+        let ny = uniform_noise(&mut run.rng, &[o.batch, config.m, p / sy, p / sy])?;
+        let nz = uniform_noise(&mut run.rng, &[o.batch, config.nz, p / sz, p / sz])?;
         let idx = Tensor::new(idx, &Device::Cpu)?;
         let wts = Tensor::new(wts, &Device::Cpu)?;
         let lam = Tensor::new(lam, &Device::Cpu)?;
