@@ -56,9 +56,12 @@ fn main() -> anyhow::Result<()> {
     let (m, n) = (model.config.m, model.config.n);
     // Any latent of the right shape: the transforms' cost does not depend on the values
     // (checked: spreads 0, 0.3 and 2 gave the same times within the machine's noise).
-    let y = Tensor::randn(0f32, 2.0, (1, m, h as usize / 16, w as usize / 16), &Device::Cpu)?.round()?;
+    let (stride, stages) = (model.config.latent_stride(), model.config.stages);
+    let y = Tensor::randn(0f32, 2.0, (1, m, h as usize / stride, w as usize / stride), &Device::Cpu)?.round()?;
     let k2 = (model.config.synthesis_kernel * model.config.synthesis_kernel) as f64;
-    let chans = [m, n, n, n, 3];
+    let mut chans = vec![m];
+    chans.extend(std::iter::repeat_n(n, stages - 1));
+    chans.push(3);
     for fused in [false, true] {
         let mut steps: Vec<(String, Vec<Duration>)> = Vec::new();
         for _ in 0..=reps {
@@ -82,7 +85,7 @@ fn main() -> anyhow::Result<()> {
             total += t;
             // "g_s.L ..." or "g_s.L+L' ...": the layer index is the number before any '+'/' '.
             let layer: usize = label[4..].split([' ', '+']).next().unwrap().parse()?;
-            let positions = (w as usize * h as usize) as f64 / 4f64.powi(4 - (layer / 2) as i32);
+            let positions = (w as usize * h as usize) as f64 / 4f64.powi((stages - layer / 2) as i32);
             let conv = 2.0 * positions * k2 * (chans[layer / 2] * chans[layer / 2 + 1] * 4) as f64;
             let gdn = 2.0 * positions * 4.0 * (n * n) as f64;
             let flops = match label.rsplit(' ').next() {

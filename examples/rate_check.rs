@@ -34,14 +34,15 @@ fn main() -> kiln::Result<()> {
     let (i, l) = model.config.anchor_position(q)?;
     let idx = candle_core::Tensor::new(&[i as u32], &candle_core::Device::Cpu)?;
     let wt = candle_core::Tensor::new(&[l], &candle_core::Device::Cpu)?;
+    let (sy, sz) = (model.config.latent_stride(), model.config.hyper_stride());
     for amp in [0.0f32, 1.0] {
         let ny =
-            (candle_core::Tensor::rand(-0.5f32, 0.5, (1, model.config.m, h / 16, w / 16), &candle_core::Device::Cpu)?
+            (candle_core::Tensor::rand(-0.5f32, 0.5, (1, model.config.m, h / sy, w / sy), &candle_core::Device::Cpu)?
                 * amp as f64)?;
         let nz = (candle_core::Tensor::rand(
             -0.5f32,
             0.5,
-            (1, model.config.nz, h / 64, w / 64),
+            (1, model.config.nz, h / sz, w / sz),
             &candle_core::Device::Cpu,
         )? * amp as f64)?;
         let out = model.forward_train(&x, &idx, &wt, &ny, &nz)?;

@@ -213,9 +213,9 @@ fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64
 }
 
 /// Applies `o.latent_channels` (growing the latent), `o.hidden_channels` (growing the
-/// transforms), `o.stages` (dropping a stage) and `o.lambdas` (re-targeting the gain tables) to a model's `tensors` and
-/// `config` at `step`; whether anything changed, and the rate warm-up of the grown channels when
-/// the latent grew. Adam moments of grown tensors grow with them (old entries keep theirs).
+/// transforms), `o.stages` (dropping a stage) and `o.lambdas` (re-targeting the gain tables) to
+/// a model's `tensors` and `config` at `step`; whether anything changed, and the rate warm-up of
+/// the grown channels when the latent grew. Adam moments of grown tensors grow with them (old entries keep theirs).
 fn adapt(
     tensors: &mut HashMap<String, Tensor>,
     config: &mut ModelConfig,
