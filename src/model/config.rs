@@ -47,7 +47,8 @@ impl Default for ModelConfig {
     /// `tools/compare-configs` (equal training budgets from scratch): 48/64 codes better after
     /// 3000 steps, 64/96 after 8000 (BD-rate vs JPEG +33.8% vs +37.1%) at 1.36× its decode
     /// time; numbers in the README. The shipped model grew its latent to M = 192 at step 72 000
-    /// (`kiln train --latent-channels`).
+    /// (`kiln train --latent-channels`) and was cut to three stages (a stride-8 latent) at step
+    /// 94 000 (`kiln train --stages 3`).
     fn default() -> Self {
         ModelConfig {
             n: 64,
