@@ -48,6 +48,35 @@ pub enum KilnError {
         /// The underlying error (shown in the message, not chained, so it prints once).
         cause: std::io::Error,
     },
+    /// An output path that must not be written (a folder, link, special file or an input).
+    #[error("{}: {reason}", path.display())]
+    OutputRefused {
+        /// The output path.
+        path: PathBuf,
+        /// Why it is refused.
+        reason: String,
+    },
+    /// An output path that already holds a file, and replacing it was not asked for.
+    #[error("{} already exists\nhint: choose another output name, or ask for it to be replaced (--force)", .0.display())]
+    OutputExists(PathBuf),
+    /// A stored relative path (catalog row, shard) that could name something outside its folder.
+    #[error("unsafe path {path:?}: {reason}; refused")]
+    UnsafePath {
+        /// The path as stored.
+        path: String,
+        /// What is wrong with it.
+        reason: String,
+    },
+    /// The archive catalog (SQLite) failed.
+    #[error("catalog {}: {message}", path.display())]
+    Catalog {
+        /// The catalog file.
+        path: PathBuf,
+        /// What went wrong, in plain words.
+        message: String,
+        /// Whether the cause is the storage itself (disk full, read-only, no permission).
+        storage: bool,
+    },
     /// A tensor computation failed (a bug or an out-of-memory condition).
     #[error("tensor computation failed: {0}")]
     Tensor(#[from] candle_core::Error),
@@ -70,5 +99,19 @@ impl KilnError {
     /// Wraps an I/O error with the path it concerns.
     pub fn io(path: impl Into<PathBuf>, source: std::io::Error) -> Self {
         KilnError::Io { path: path.into(), cause: source }
+    }
+
+    /// Whether this error comes from the storage being unusable (disk full, quota exceeded,
+    /// read-only file system, no permission): retrying other files cannot succeed, so a batch
+    /// job must stop.
+    pub fn is_storage_failure(&self) -> bool {
+        use std::io::ErrorKind as K;
+        match self {
+            KilnError::Io { cause, .. } => {
+                matches!(cause.kind(), K::StorageFull | K::QuotaExceeded | K::ReadOnlyFilesystem | K::PermissionDenied)
+            }
+            KilnError::Catalog { storage, .. } => *storage,
+            _ => false,
+        }
     }
 }

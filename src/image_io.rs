@@ -1,15 +1,20 @@
 //! Reading images into planar-friendly buffers and writing PNGs atomically.
 //!
-//! Policy: 8-bit RGB and grey are taken as they are; an alpha channel is refused unless the
-//! caller asks to drop it; 16-bit and float images are refused ("not supported yet"), never
-//! silently converted.
+//! Policy: 8-bit RGB and grey are taken as they are; an alpha channel that is opaque everywhere
+//! is dropped (nothing is lost), any other alpha is refused unless the caller asks to drop it;
+//! 16-bit and float images are refused ("not supported yet"), never silently converted; images
+//! with more than one page or frame (multi-page TIFF, animated GIF, PNG or WebP) are refused by
+//! name rather than stored as their first page; the EXIF orientation is applied, so the pixels
+//! are the ones a viewer shows. Only regular files are opened: a FIFO or device is refused
+//! before it can block the reader.
 
-use std::io::Write;
+use std::io::{Cursor, Read};
 use std::path::Path;
 
-use image::{DynamicImage, ImageReader};
+use image::{AnimationDecoder, DynamicImage, ImageDecoder, ImageFormat, ImageReader};
 
 use crate::error::{KilnError, Result};
+use crate::files::{Overwrite, write_output};
 
 /// An 8-bit image, samples interleaved row by row (`channels` = 1 or 3).
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -43,9 +48,10 @@ impl Picture {
                 "{color:?}: only 8-bit images are supported yet\nhint: convert to 8-bit first; Kiln never converts silently"
             )));
         }
-        if color.has_alpha() && alpha == AlphaPolicy::Refuse {
+        let opaque = color.has_alpha() && is_opaque(&img);
+        if color.has_alpha() && !opaque && alpha == AlphaPolicy::Refuse {
             return Err(KilnError::UnsupportedImage(
-                "the image has an alpha channel\nhint: pass --drop-alpha to code the colour channels only".into(),
+                "the image has transparent pixels (an alpha channel below full opacity)\nhint: pass --drop-alpha to code the colour channels only".into(),
             ));
         }
         let (width, height) = (img.width(), img.height());
@@ -54,14 +60,30 @@ impl Picture {
         Ok(Picture { width, height, channels, data })
     }
 
-    /// Reads any format the image crate recognises.
+    /// Reads any format the image crate recognises (see the module policy).
+    ///
+    /// # Errors
+    /// I/O errors naming the path; [`KilnError::UnsupportedImage`] for a special file, an
+    /// undecodable file, several pages or frames, or samples Kiln does not take.
     pub fn open(path: &Path, alpha: AlphaPolicy) -> Result<Self> {
-        let reader = ImageReader::open(path).map_err(|e| KilnError::io(path, e))?;
-        let reader = reader.with_guessed_format().map_err(|e| KilnError::io(path, e))?;
-        let img = reader
-            .decode()
-            .map_err(|e| KilnError::UnsupportedImage(format!("{}: cannot decode: {e}", path.display())))?;
-        Self::from_dynamic(img, alpha)
+        let bytes = read_regular(path)?;
+        let unsupported = |m: String| KilnError::UnsupportedImage(format!("{}: {m}", path.display()));
+        let reader =
+            ImageReader::new(Cursor::new(&bytes[..])).with_guessed_format().map_err(|e| KilnError::io(path, e))?;
+        let format = reader.format().ok_or_else(|| unsupported("not an image format Kiln reads".into()))?;
+        if let Some(pages) = several_frames(&bytes, format) {
+            return Err(unsupported(format!(
+                "has more than one {pages}; Kiln stores single images\nhint: split it into one file per {pages} first"
+            )));
+        }
+        let mut decoder = reader.into_decoder().map_err(|e| unsupported(format!("cannot decode: {e}")))?;
+        let orientation = decoder.orientation().map_err(|e| unsupported(format!("cannot decode: {e}")))?;
+        let mut img = DynamicImage::from_decoder(decoder).map_err(|e| unsupported(format!("cannot decode: {e}")))?;
+        img.apply_orientation(orientation);
+        Self::from_dynamic(img, alpha).map_err(|e| match e {
+            KilnError::UnsupportedImage(m) => unsupported(m),
+            other => other,
+        })
     }
 
     /// Encodes as PNG bytes with the smallest output ([`PngEffort::Smallest`]): the lossless
@@ -105,18 +127,77 @@ pub enum PngEffort {
     Smallest,
 }
 
-/// Writes `bytes` to `path` through a temporary file in the same folder, renamed when complete,
-/// so that `path` is never left half-written.
+/// Writes a file Kiln owns (a report, a checkpoint, a model being trained) through a temporary
+/// file in the same folder, renamed when complete, so that `path` is never left half-written.
+/// It replaces a regular file at `path`; anything else there is refused (see [`crate::files`]).
+/// Outputs the user names go through [`crate::files::write_output`] with their own policy.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
-    let dir = match path.parent() {
-        Some(d) if !d.as_os_str().is_empty() => d,
-        _ => Path::new("."),
-    };
-    let mut tmp = tempfile::Builder::new().prefix(".kiln-tmp-").tempfile_in(dir).map_err(|e| KilnError::io(dir, e))?;
-    tmp.write_all(bytes).map_err(|e| KilnError::io(tmp.path(), e))?;
-    tmp.as_file().sync_all().map_err(|e| KilnError::io(path, e))?;
-    tmp.persist(path).map_err(|e| KilnError::io(path, e.error))?;
-    Ok(())
+    write_output(path, bytes, Overwrite::Replace, &[])
+}
+
+/// Reads a whole file, refusing anything but a regular file before it is opened for reading
+/// (a FIFO would block the reader forever, a device could be endless).
+///
+/// # Errors
+/// I/O errors naming the path; [`KilnError::UnsupportedImage`] for a special file.
+pub fn read_regular(path: &Path) -> Result<Vec<u8>> {
+    let mut options = std::fs::OpenOptions::new();
+    options.read(true);
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::OpenOptionsExt;
+        // O_NONBLOCK: opening a FIFO must not wait for a writer; it has no effect on regular files.
+        options.custom_flags(libc::O_NONBLOCK);
+    }
+    let mut file = options.open(path).map_err(|e| KilnError::io(path, e))?;
+    let meta = file.metadata().map_err(|e| KilnError::io(path, e))?;
+    if !meta.is_file() {
+        return Err(KilnError::UnsupportedImage(format!(
+            "{}: not a regular file (a folder, device, FIFO or socket); Kiln reads regular files only",
+            path.display()
+        )));
+    }
+    let mut bytes = Vec::with_capacity(meta.len().min(1 << 30) as usize);
+    file.read_to_end(&mut bytes).map_err(|e| KilnError::io(path, e))?;
+    Ok(bytes)
+}
+
+/// Whether every alpha sample is at full opacity (then dropping alpha loses nothing).
+fn is_opaque(img: &DynamicImage) -> bool {
+    match img {
+        DynamicImage::ImageLumaA8(b) => b.pixels().all(|p| p.0[1] == u8::MAX),
+        DynamicImage::ImageRgba8(b) => b.pixels().all(|p| p.0[3] == u8::MAX),
+        DynamicImage::ImageLumaA16(b) => b.pixels().all(|p| p.0[1] == u16::MAX),
+        DynamicImage::ImageRgba16(b) => b.pixels().all(|p| p.0[3] == u16::MAX),
+        DynamicImage::ImageRgba32F(b) => b.pixels().all(|p| p.0[3] >= 1.0),
+        _ => false,
+    }
+}
+
+/// `Some("page")`/`Some("frame")` when the file holds more than one image (multi-page TIFF,
+/// animated GIF, PNG or WebP), `None` otherwise or when that cannot be told (the decoder will
+/// then report the file's real problem).
+fn several_frames(bytes: &[u8], format: ImageFormat) -> Option<&'static str> {
+    let cursor = || Cursor::new(bytes);
+    match format {
+        ImageFormat::Tiff => {
+            let d = tiff::decoder::Decoder::new(cursor()).ok()?;
+            d.more_images().then_some("page")
+        }
+        ImageFormat::Gif => {
+            let d = image::codecs::gif::GifDecoder::new(cursor()).ok()?;
+            (d.into_frames().take(2).count() > 1).then_some("frame")
+        }
+        ImageFormat::Png => {
+            let d = image::codecs::png::PngDecoder::new(cursor()).ok()?;
+            d.is_apng().ok()?.then_some("frame")
+        }
+        ImageFormat::WebP => {
+            let d = image::codecs::webp::WebPDecoder::new(cursor()).ok()?;
+            d.has_animation().then_some("frame")
+        }
+        _ => None,
+    }
 }
 
 #[cfg(test)]

@@ -12,11 +12,13 @@ pub mod container;
 pub mod entropy;
 pub mod error;
 pub mod eval;
+pub mod files;
 pub mod image_io;
 pub mod kernels;
 pub mod metrics;
 pub mod model;
 pub mod refine;
+pub mod source_tree;
 pub mod train;
 
 pub use codec::{Codec, EncodeStats, Encoded};

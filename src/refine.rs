@@ -41,17 +41,26 @@ pub struct RefineConfig {
 impl RefineConfig {
     /// Refuses a step size that is not a positive number.
     pub fn validate(&self) -> Result<()> {
-        if self.learning_rate.is_finite() && self.learning_rate > 0.0 {
+        if self.iterations > MAX_REFINE_ITERATIONS {
+            return Err(KilnError::InvalidArgument(format!(
+                "{} refinement steps is above the limit of {MAX_REFINE_ITERATIONS} (100 gets most of the gain)",
+                self.iterations
+            )));
+        }
+        if self.learning_rate.is_finite() && self.learning_rate > 0.0 && self.learning_rate <= 10.0 {
             Ok(())
         } else {
             Err(KilnError::InvalidArgument(format!(
-                "refinement learning rate {} is not a positive number\nhint: {} is the default",
+                "refinement learning rate {} is not a number in (0, 10]\nhint: {} is the default",
                 self.learning_rate,
                 RefineConfig::default().learning_rate
             )))
         }
     }
 }
+
+/// Most refinement steps per tile accepted (each costs about a second per megapixel).
+pub const MAX_REFINE_ITERATIONS: usize = 10_000;
 
 impl Default for RefineConfig {
     fn default() -> Self {

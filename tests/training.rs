@@ -57,6 +57,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         encoder_only: false,
         rounded_rate: false,
         progress: false,
+        force: false,
     }
 }
 

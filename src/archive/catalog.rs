@@ -43,8 +43,9 @@ pub struct Entry {
     pub bpp: f64,
     /// PSNR of the decoded result against the source, dB.
     pub psnr: f64,
-    /// MS-SSIM of the decoded result against the source.
-    pub ms_ssim: f64,
+    /// MS-SSIM of the decoded result against the source; `None` where it is undefined (images
+    /// smaller than its five scales need: under 11 px on a side).
+    pub ms_ssim: Option<f64>,
     /// Model fingerprint (hex).
     pub model_fingerprint: String,
     /// When it was packed (seconds since the Unix epoch).
@@ -59,7 +60,40 @@ pub struct Catalog {
 }
 
 fn db(path: &Path) -> impl Fn(rusqlite::Error) -> KilnError + '_ {
-    move |e| KilnError::InvalidArgument(format!("catalog {}: {e}", path.display()))
+    move |e| {
+        use rusqlite::ErrorCode as C;
+        let code = match &e {
+            rusqlite::Error::SqliteFailure(f, _) => Some(f.code),
+            _ => None,
+        };
+        let plain = match code {
+            Some(C::DiskFull) => Some("the disk is full"),
+            Some(C::ReadOnly) => Some("the catalog or its folder is read-only"),
+            Some(C::PermissionDenied) => Some("permission denied"),
+            Some(C::CannotOpen) => Some("cannot open the file (missing folder or no permission)"),
+            Some(C::SystemIoFailure) => Some("the storage failed (I/O error)"),
+            _ => None,
+        };
+        KilnError::Catalog {
+            path: path.to_path_buf(),
+            message: match plain {
+                Some(p) => format!("{p} (SQLite: {e})"),
+                None => e.to_string(),
+            },
+            storage: plain.is_some(),
+        }
+    }
+}
+
+/// A file under the source root that a pack run did not archive, as recorded in the catalog.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct SkippedRow {
+    /// Path relative to the source root as shown to people.
+    pub rel_path: String,
+    /// Why it was not archived.
+    pub reason: String,
+    /// Whether it is an error (an image that should have been archived) or a note.
+    pub error: bool,
 }
 
 const COLUMNS: &str = "rel_path, source_size, source_mtime_ns, pixel_sha256, container_path, container_size, png_size, \
@@ -75,12 +109,66 @@ impl Catalog {
                rel_path TEXT PRIMARY KEY, source_size INTEGER NOT NULL, source_mtime_ns INTEGER NOT NULL,
                pixel_sha256 TEXT NOT NULL, container_path TEXT NOT NULL, container_size INTEGER NOT NULL,
                png_size INTEGER NOT NULL, width INTEGER NOT NULL, height INTEGER NOT NULL, channels INTEGER NOT NULL,
-               quality REAL NOT NULL, bpp REAL NOT NULL, psnr REAL NOT NULL, ms_ssim REAL NOT NULL,
+               quality REAL NOT NULL, bpp REAL NOT NULL, psnr REAL NOT NULL, ms_ssim REAL,
                model_fingerprint TEXT NOT NULL, packed_at INTEGER NOT NULL);
-             CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);",
+             CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+             CREATE TABLE IF NOT EXISTS skipped (
+               rel_path TEXT PRIMARY KEY, reason TEXT NOT NULL, is_error INTEGER NOT NULL);",
         )
         .map_err(db(path))?;
-        Ok(Catalog { conn, path: path.to_path_buf() })
+        let mut cat = Catalog { conn, path: path.to_path_buf() };
+        cat.allow_undefined_ms_ssim()?;
+        Ok(cat)
+    }
+
+    /// Catalogs written before MS-SSIM could be undefined declared it `NOT NULL`; SQLite cannot
+    /// drop a constraint in place, so the table is rebuilt once (one transaction, rows unchanged).
+    fn allow_undefined_ms_ssim(&mut self) -> Result<()> {
+        let not_null: i64 = self
+            .conn
+            .query_row("SELECT \"notnull\" FROM pragma_table_info('files') WHERE name = 'ms_ssim'", [], |r| r.get(0))
+            .map_err(db(&self.path))?;
+        if not_null == 0 {
+            return Ok(());
+        }
+        let tx = self.conn.transaction().map_err(db(&self.path))?;
+        let create: String = tx
+            .query_row("SELECT sql FROM sqlite_master WHERE type = 'table' AND name = 'files'", [], |r| r.get(0))
+            .map_err(db(&self.path))?;
+        let create = create.replace("ms_ssim REAL NOT NULL", "ms_ssim REAL").replacen("files", "files_new", 1);
+        tx.execute_batch(&format!(
+            "{create}; INSERT INTO files_new SELECT * FROM files; DROP TABLE files; ALTER TABLE files_new RENAME TO files;"
+        ))
+        .map_err(db(&self.path))?;
+        tx.commit().map_err(db(&self.path))
+    }
+
+    /// Replaces the list of skipped files with `rows` (one transaction).
+    pub fn set_skipped(&mut self, rows: &[SkippedRow]) -> Result<()> {
+        let tx = self.conn.transaction().map_err(db(&self.path))?;
+        tx.execute("DELETE FROM skipped", []).map_err(db(&self.path))?;
+        for r in rows {
+            tx.execute(
+                "INSERT OR REPLACE INTO skipped (rel_path, reason, is_error) VALUES (?1, ?2, ?3)",
+                params![r.rel_path, r.reason, r.error as i64],
+            )
+            .map_err(db(&self.path))?;
+        }
+        tx.commit().map_err(db(&self.path))
+    }
+
+    /// Files the last pack run did not archive, ordered by path.
+    pub fn skipped(&self) -> Result<Vec<SkippedRow>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT rel_path, reason, is_error FROM skipped ORDER BY rel_path")
+            .map_err(db(&self.path))?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(SkippedRow { rel_path: r.get(0)?, reason: r.get(1)?, error: r.get::<_, i64>(2)? != 0 })
+            })
+            .map_err(db(&self.path))?;
+        rows.collect::<std::result::Result<Vec<_>, _>>().map_err(db(&self.path))
     }
 
     /// Opens an existing catalog, failing with a hint if there is none.

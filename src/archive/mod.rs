@@ -1,10 +1,19 @@
 //! Archives: a source tree mirrored as `.kiln` containers with a SQLite catalog.
 //!
 //! Guarantees of [`pack`]: nothing under the source is ever written, moved or deleted; every
-//! container is written to a temporary file in its folder and renamed when complete, and its
-//! catalog row is committed after the rename, so an interrupted run leaves no half-written
-//! container or row (stale temporary files are removed at the next run); a rerun skips files
-//! whose row matches the source's size, modification time and pixel hash.
+//! entry under the source is either packed or listed as skipped with its reason (printed and
+//! kept in the catalog, see [`crate::source_tree`]); every container is written to a temporary file in its
+//! folder and renamed when complete, and its catalog row is committed after the rename, so an
+//! interrupted run leaves no half-written container or row (stale temporary files are removed
+//! at the next run); a rerun skips files whose row matches the source's size, modification time
+//! and pixel hash and whose container passes its checksums, and re-encodes the rest (a damaged
+//! container heals); a failure of the storage itself (disk full, read-only, no permission)
+//! stops every worker and the run, leaving the catalog consistent for a rerun.
+//!
+//! Guarantees of [`unpack`]: every path read from the catalog is checked to stay inside the
+//! output folder ([`crate::files::safe_relative`]); each source maps to its own restored name
+//! ([`crate::files::restored_name`]); an existing file is replaced only when asked; damage in
+//! one container is reported by name and the others are still restored.
 
 pub mod catalog;
 
@@ -12,21 +21,36 @@ use std::path::{Path, PathBuf};
 use std::sync::mpsc;
 use std::time::{Instant, SystemTime, UNIX_EPOCH};
 
+use std::sync::atomic::{AtomicBool, Ordering};
+
 use rayon::prelude::*;
 use serde::Serialize;
 use sha2::{Digest, Sha256};
 
 use crate::codec::Codec;
 use crate::error::{KilnError, Result};
-use crate::image_io::{AlphaPolicy, Picture, PngEffort, write_atomic};
+use crate::files::{Overwrite, create_parents_within, restored_name, safe_relative, write_output};
+use crate::image_io::{AlphaPolicy, Picture, PngEffort};
 use crate::metrics::{ms_ssim, psnr};
 use crate::model::hex_prefix;
-use catalog::{CATALOG_FILE, Catalog, Entry, shard_file};
+use catalog::{CATALOG_FILE, Catalog, Entry, SkippedRow, shard_file};
 
 /// Extension appended to a source file's name for its container.
 pub const CONTAINER_EXTENSION: &str = "kiln";
 /// Prefix of temporary files (removed from the archive at the start of every pack).
-pub const TEMP_PREFIX: &str = ".kiln-tmp-";
+pub const TEMP_PREFIX: &str = crate::files::TEMP_PREFIX;
+
+/// Smallest side on which [`crate::metrics::ms_ssim`] is defined: its 11-px window must fit
+/// the full-resolution image.
+pub const MS_SSIM_MIN_SIDE: usize = 11;
+
+/// MS-SSIM of a decoded image, `None` where the image is too small for it.
+pub fn ms_ssim_if_defined(a: &Picture, b: &Picture) -> Option<f64> {
+    let (w, h, c) = (a.width as usize, a.height as usize, a.channels as usize);
+    (w >= MS_SSIM_MIN_SIDE && h >= MS_SSIM_MIN_SIDE)
+        .then(|| ms_ssim(&a.data, &b.data, w, h, c))
+        .filter(|v| v.is_finite())
+}
 
 /// How the quality of each image is chosen.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -82,6 +106,8 @@ pub struct PackOptions {
     pub shard: Option<Shard>,
     /// Show a progress bar.
     pub progress: bool,
+    /// Follow symbolic links whose targets lie inside the source (each folder once).
+    pub follow_symlinks: bool,
 }
 
 /// What a pack run did.
@@ -93,6 +119,17 @@ pub struct PackReport {
     pub unchanged: usize,
     /// Files that failed, with the reason.
     pub failed: Vec<(String, String)>,
+    /// Rows whose source was unchanged but whose container failed its checks, re-encoded.
+    pub repaired: Vec<String>,
+    /// Entries under the source that are not images to pack: `(path, reason, is_error)`.
+    pub skipped: Vec<(String, String, bool)>,
+}
+
+impl PackReport {
+    /// Whether some image under the source was not archived (a failure or an error skip).
+    pub fn has_errors(&self) -> bool {
+        !self.failed.is_empty() || self.skipped.iter().any(|s| s.2)
+    }
 }
 
 /// SHA-256 of decoded pixels: width, height, channels (little-endian `u32`s), then samples.
@@ -103,11 +140,6 @@ pub fn pixel_hash(p: &Picture) -> String {
     h.update((p.channels as u32).to_le_bytes());
     h.update(&p.data);
     hex_prefix(&h.finalize(), 32)
-}
-
-fn rel_string(path: &Path, root: &Path) -> String {
-    let rel = path.strip_prefix(root).unwrap_or(path);
-    rel.components().map(|c| c.as_os_str().to_string_lossy()).collect::<Vec<_>>().join("/")
 }
 
 fn container_rel(rel: &str) -> String {
@@ -192,58 +224,83 @@ pub fn encode_for_target(codec: &Codec, pic: &Picture, target: Target) -> Result
 }
 
 enum Outcome {
-    Packed(Box<Entry>),
+    Packed(Box<Entry>, bool),
     Unchanged,
     Failed(String, String),
+    /// The storage under the archive failed: every worker stops.
+    Fatal(KilnError),
 }
 
+/// Whether the container at `path` is intact: the catalog's size and both checksums.
+fn container_intact(path: &Path, size: u64) -> bool {
+    std::fs::symlink_metadata(path).is_ok_and(|m| m.is_file() && m.len() == size)
+        && std::fs::read(path).is_ok_and(|b| crate::container::read(&b).is_ok())
+}
+
+fn first_line(e: &KilnError) -> String {
+    e.to_string().lines().next().unwrap_or("").to_string()
+}
+
+/// A catalog row, its container's bytes, and whether it repairs a damaged container.
+type Encoded = (Entry, Vec<u8>, bool);
+
 fn pack_one(codec: &Codec, o: &PackOptions, path: &Path, rel: &str, existing: Option<Entry>) -> Outcome {
-    let run = || -> Result<Outcome> {
+    let crel = container_rel(rel);
+    let cpath = o.dest.join(&crel);
+    // `Ok(None)`: unchanged; `Ok(Some((row, container, repaired)))`: encoded.
+    let encode = || -> Result<Option<Encoded>> {
         let meta = std::fs::metadata(path).map_err(|e| KilnError::io(path, e))?;
         let pic = Picture::open(path, AlphaPolicy::Refuse)?;
         let hash = pixel_hash(&pic);
-        let crel = container_rel(rel);
-        let cpath = o.dest.join(&crel);
         let fp = hex_prefix(&codec.model_file().fingerprint, 32);
+        let mut repaired = false;
         if let Some(e) = existing
             && e.source_size == meta.len()
             && e.source_mtime_ns == mtime_ns(&meta)
             && e.pixel_sha256 == hash
             && e.model_fingerprint == fp
             && !matches!(o.target, Target::Quality(q) if (e.quality - q as f64).abs() > 1e-6)
-            && std::fs::metadata(&cpath).is_ok_and(|m| m.len() == e.container_size)
         {
-            return Ok(Outcome::Unchanged);
+            if container_intact(&cpath, e.container_size) {
+                return Ok(None);
+            }
+            repaired = true;
         }
         let (bytes, quality, dec) = encode_for_target(codec, &pic, o.target)?;
-        if let Some(parent) = cpath.parent() {
-            std::fs::create_dir_all(parent).map_err(|e| KilnError::io(parent, e))?;
-        }
-        write_atomic(&cpath, &bytes)?;
-        let (w, h, c) = (pic.width as usize, pic.height as usize, pic.channels as usize);
-        let png_size = image_png_size(&pic)?;
-        Ok(Outcome::Packed(Box::new(Entry {
+        let (w, h) = (pic.width as usize, pic.height as usize);
+        let entry = Entry {
             rel_path: rel.to_string(),
             source_size: meta.len(),
             source_mtime_ns: mtime_ns(&meta),
             pixel_sha256: hash,
-            container_path: crel,
+            container_path: crel.clone(),
             container_size: bytes.len() as u64,
-            png_size,
+            png_size: image_png_size(&pic)?,
             width: pic.width,
             height: pic.height,
             channels: pic.channels,
             quality: quality as f64,
             bpp: bytes.len() as f64 * 8.0 / (w * h) as f64,
             psnr: psnr(&pic.data, &dec.data),
-            ms_ssim: if w >= 11 && h >= 11 { ms_ssim(&pic.data, &dec.data, w, h, c) } else { f64::NAN },
+            ms_ssim: ms_ssim_if_defined(&pic, &dec),
             model_fingerprint: fp,
             packed_at: now(),
-        })))
+        };
+        Ok(Some((entry, bytes, repaired)))
     };
-    match run() {
-        Ok(o) => o,
-        Err(e) => Outcome::Failed(rel.to_string(), e.to_string().lines().next().unwrap_or("").to_string()),
+    let (entry, bytes, repaired) = match encode() {
+        Ok(Some(x)) => x,
+        Ok(None) => return Outcome::Unchanged,
+        Err(e) => return Outcome::Failed(rel.to_string(), first_line(&e)),
+    };
+    let write = || -> Result<()> {
+        create_parents_within(&o.dest, Path::new(&crel))?;
+        write_output(&cpath, &bytes, Overwrite::Replace, &[path])
+    };
+    match write() {
+        Ok(()) => Outcome::Packed(Box::new(entry), repaired),
+        Err(e) if e.is_storage_failure() => Outcome::Fatal(e),
+        Err(e) => Outcome::Failed(rel.to_string(), first_line(&e)),
     }
 }
 
@@ -263,13 +320,27 @@ fn remove_stale_temporaries(dir: &Path) -> Result<()> {
     let Ok(entries) = std::fs::read_dir(dir) else { return Ok(()) };
     for e in entries.flatten() {
         let p = e.path();
-        if p.is_dir() {
+        let Ok(kind) = e.file_type() else { continue };
+        if kind.is_dir() {
             remove_stale_temporaries(&p)?;
-        } else if e.file_name().to_string_lossy().starts_with(TEMP_PREFIX) {
+        } else if kind.is_file() && e.file_name().to_string_lossy().starts_with(TEMP_PREFIX) {
             std::fs::remove_file(&p).map_err(|err| KilnError::io(&p, err))?;
         }
     }
     Ok(())
+}
+
+/// Number of `.kiln` files under `dir` (links not followed).
+fn count_containers(dir: &Path) -> usize {
+    let Ok(entries) = std::fs::read_dir(dir) else { return 0 };
+    entries
+        .flatten()
+        .map(|e| match e.file_type() {
+            Ok(k) if k.is_dir() => count_containers(&e.path()),
+            Ok(k) if k.is_file() && e.path().extension().is_some_and(|x| x == CONTAINER_EXTENSION) => 1,
+            _ => 0,
+        })
+        .sum()
 }
 
 /// The catalog path a pack run with this shard writes.
@@ -281,6 +352,11 @@ pub fn catalog_path(dest: &Path, shard: Option<Shard>) -> PathBuf {
 }
 
 /// Packs `o.src` into `o.dest`.
+///
+/// # Errors
+/// Source or destination unusable, or a storage failure during the run (the report of what was
+/// done before it is lost, the catalog is consistent and a rerun resumes). Per-file problems are
+/// not errors: they are in the report.
 pub fn pack(codec: &Codec, o: &PackOptions) -> Result<PackReport> {
     if !o.src.is_dir() {
         return Err(KilnError::InvalidArgument(format!("source {} is not a folder", o.src.display())));
@@ -294,16 +370,18 @@ pub fn pack(codec: &Codec, o: &PackOptions) -> Result<PackReport> {
     remove_stale_temporaries(&dest)?;
     let mut cat = Catalog::open(&catalog_path(&dest, o.shard))?;
     cat.set_meta("source_root", &src.display().to_string())?;
-    let files: Vec<(PathBuf, String)> = crate::train::data::list_images(std::slice::from_ref(&src))?
+    let listing = crate::source_tree::list_source(&src, o.follow_symlinks)?;
+    let takes = |rel: &str| o.shard.is_none_or(|s| s.takes(rel));
+    let work: Vec<(PathBuf, String, Option<Entry>)> = listing
+        .files
         .into_iter()
-        .map(|p| {
-            let rel = rel_string(&p, &src);
-            (p, rel)
-        })
-        .filter(|(_, rel)| o.shard.is_none_or(|s| s.takes(rel)))
-        .collect();
-    let work: Vec<(PathBuf, String, Option<Entry>)> =
-        files.into_iter().map(|(p, r)| cat.get(&r).map(|e| (p, r, e))).collect::<Result<_>>()?;
+        .filter(|f| takes(&f.rel))
+        .map(|f| cat.get(&f.rel).map(|e| (f.path, f.rel, e)))
+        .collect::<Result<_>>()?;
+    let mut report = PackReport {
+        skipped: listing.skipped.into_iter().filter(|s| takes(&s.rel)).map(|s| (s.rel, s.reason, s.error)).collect(),
+        ..PackReport::default()
+    };
     let bar =
         if o.progress { indicatif::ProgressBar::new(work.len() as u64) } else { indicatif::ProgressBar::hidden() };
     bar.set_style(
@@ -313,42 +391,78 @@ pub fn pack(codec: &Codec, o: &PackOptions) -> Result<PackReport> {
     let pool = rayon::ThreadPoolBuilder::new()
         .num_threads(o.jobs.max(1))
         .build()
-        .map_err(|e| KilnError::InvalidArgument(e.to_string()))?;
+        .map_err(|e| KilnError::InvalidArgument(format!("cannot start {} worker threads: {e}", o.jobs)))?;
     let o_inner = PackOptions { dest: dest.clone(), ..o.clone() };
     let (tx, rx) = mpsc::sync_channel::<Outcome>(o.jobs.max(1));
-    let mut report = PackReport::default();
+    let stop = AtomicBool::new(false);
     let t0 = Instant::now();
     let (mut mpx, mut saved) = (0.0f64, 0i64);
-    std::thread::scope(|s| -> Result<()> {
+    let mut fatal: Option<KilnError> = None;
+    std::thread::scope(|s| {
         s.spawn(|| {
             pool.install(|| {
                 work.into_par_iter().for_each_with(tx, |tx, (p, rel, existing)| {
+                    if stop.load(Ordering::Relaxed) {
+                        return;
+                    }
                     let _ = tx.send(pack_one(codec, &o_inner, &p, &rel, existing));
                 })
             })
         });
+        // Every outcome is received (the workers never block on a full channel), but after a
+        // storage failure nothing more is written and the workers start no new file.
         for outcome in rx {
-            match outcome {
-                Outcome::Packed(e) => {
-                    cat.put(&e)?;
+            if fatal.is_some() {
+                continue;
+            }
+            let result = match outcome {
+                Outcome::Packed(e, repaired) => cat.put(&e).map(|()| {
                     mpx += e.width as f64 * e.height as f64 / 1e6;
                     saved += e.source_size as i64 - e.container_size as i64;
                     report.packed += 1;
+                    if repaired {
+                        report.repaired.push(e.rel_path.clone());
+                    }
+                }),
+                Outcome::Unchanged => {
+                    report.unchanged += 1;
+                    Ok(())
                 }
-                Outcome::Unchanged => report.unchanged += 1,
-                Outcome::Failed(rel, why) => report.failed.push((rel, why)),
+                Outcome::Failed(rel, why) => {
+                    report.failed.push((rel, why));
+                    Ok(())
+                }
+                Outcome::Fatal(e) => Err(e),
+            };
+            if let Err(e) = result {
+                stop.store(true, Ordering::Relaxed);
+                fatal = Some(e);
+                continue;
             }
             bar.inc(1);
             let secs = t0.elapsed().as_secs_f64().max(1e-9);
             bar.set_message(format!("{:.2} Mpx/s, {:.1} MB saved", mpx / secs, saved as f64 / 1e6));
         }
-        Ok(())
-    })?;
+    });
     bar.finish_and_clear();
+    if let Some(e) = fatal {
+        return Err(e);
+    }
+    let mut rows: Vec<SkippedRow> = report
+        .skipped
+        .iter()
+        .map(|(rel, reason, error)| SkippedRow { rel_path: rel.clone(), reason: reason.clone(), error: *error })
+        .collect();
+    rows.extend(report.failed.iter().map(|(rel, why)| SkippedRow {
+        rel_path: rel.clone(),
+        reason: why.clone(),
+        error: true,
+    }));
+    cat.set_skipped(&rows)?;
     Ok(report)
 }
 
-/// One problem found by [`verify`].
+/// One problem found by [`verify`] or [`unpack`].
 #[derive(Debug, Clone, Serialize)]
 pub struct Mismatch {
     /// Relative source path.
@@ -357,30 +471,59 @@ pub struct Mismatch {
     pub problem: String,
 }
 
+/// Reads and decodes the container of catalog row `e`, its stored path checked first.
+fn decode_entry(codec: &Codec, dest: &Path, e: &Entry) -> std::result::Result<Picture, String> {
+    let crel = safe_relative(&e.container_path).map_err(|err| first_line(&err))?;
+    let cpath = dest.join(crel);
+    let bytes =
+        crate::image_io::read_regular(&cpath).map_err(|err| format!("container unreadable: {}", first_line(&err)))?;
+    if bytes.len() as u64 != e.container_size {
+        return Err(format!("container is {} bytes, catalog says {}", bytes.len(), e.container_size));
+    }
+    codec.decode(&bytes).map_err(|err| first_line(&err))
+}
+
+/// What [`verify`] found.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct VerifyReport {
+    /// Rows in the catalog.
+    pub files: usize,
+    /// Rows whose container or source failed a check, each named.
+    pub problems: Vec<Mismatch>,
+    /// Files under the source that the last pack did not archive (`(path, reason, is_error)`).
+    pub skipped: Vec<(String, String, bool)>,
+}
+
 /// Decodes every container in the catalog, checks its checksums and, where the source is still
-/// present and unchanged, that the decoded PSNR matches the recorded one (±0.01 dB).
-pub fn verify(codec: &Codec, dest: &Path) -> Result<(usize, Vec<Mismatch>)> {
+/// present and unchanged, that the decoded PSNR matches the recorded one (±0.01 dB). Goes on
+/// past every damaged file.
+///
+/// # Errors
+/// No catalog, an unreadable catalog, or a catalog without rows beside containers (a lost or
+/// foreign catalog must not read as "all verified").
+pub fn verify(codec: &Codec, dest: &Path) -> Result<VerifyReport> {
     let cat = Catalog::open_existing(&dest.join(CATALOG_FILE))?;
     let src_root = cat.meta("source_root")?.map(PathBuf::from);
     let entries = cat.all()?;
+    if entries.is_empty() {
+        let n = count_containers(dest);
+        if n > 0 {
+            return Err(KilnError::InvalidArgument(format!(
+                "the catalog of {} lists no files, but the folder holds {n} container(s)\nhint: the catalog was lost or replaced; run `kiln pack` again with the same source to rebuild it",
+                dest.display()
+            )));
+        }
+    }
     let problems: Vec<Mismatch> = entries
         .par_iter()
         .filter_map(|e| {
             let fail = |p: String| Some(Mismatch { rel_path: e.rel_path.clone(), problem: p });
-            let cpath = dest.join(&e.container_path);
-            let bytes = match std::fs::read(&cpath) {
-                Ok(b) => b,
-                Err(err) => return fail(format!("container unreadable: {err}")),
-            };
-            if bytes.len() as u64 != e.container_size {
-                return fail(format!("container is {} bytes, catalog says {}", bytes.len(), e.container_size));
-            }
-            let dec = match codec.decode(&bytes) {
+            let dec = match decode_entry(codec, dest, e) {
                 Ok(d) => d,
-                Err(err) => return fail(err.to_string().lines().next().unwrap_or("").to_string()),
+                Err(why) => return fail(why),
             };
-            let source = src_root.as_ref().map(|r| r.join(&e.rel_path)).filter(|p| p.is_file());
-            if let Some(sp) = source {
+            let source = src_root.as_ref().zip(safe_relative(&e.rel_path).ok()).map(|(r, rel)| r.join(rel));
+            if let Some(sp) = source.filter(|p| p.is_file()) {
                 match Picture::open(&sp, AlphaPolicy::Refuse) {
                     Ok(pic) if pixel_hash(&pic) != e.pixel_sha256 => {
                         return fail("source pixels changed since packing".into());
@@ -391,31 +534,72 @@ pub fn verify(codec: &Codec, dest: &Path) -> Result<(usize, Vec<Mismatch>)> {
                             return fail(format!("decoded PSNR {p:.3} dB, catalog says {:.3} dB", e.psnr));
                         }
                     }
-                    Err(err) => return fail(format!("source unreadable: {err}")),
+                    Err(err) => return fail(format!("source unreadable: {}", first_line(&err))),
                 }
             }
             None
         })
         .collect();
-    Ok((entries.len(), problems))
+    let skipped = cat.skipped()?.into_iter().map(|r| (r.rel_path, r.reason, r.error)).collect();
+    Ok(VerifyReport { files: entries.len(), problems, skipped })
 }
 
-/// Decodes every container back to PNG under `out`, mirroring paths (extension → `.png`),
-/// writing the PNGs with `png` effort.
-pub fn unpack(codec: &Codec, dest: &Path, out: &Path, png: PngEffort) -> Result<usize> {
+/// What [`unpack`] did.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct UnpackReport {
+    /// Files written.
+    pub restored: usize,
+    /// Rows not restored, each named with the reason.
+    pub problems: Vec<Mismatch>,
+}
+
+/// Decodes every container back to PNG under `out` (created if missing), mirroring paths
+/// (names from [`restored_name`]), writing the PNGs with `png` effort. An existing file is
+/// replaced only with [`Overwrite::Replace`]. Goes on past every damaged container or unsafe
+/// row and reports each.
+///
+/// # Errors
+/// No catalog, or `out` cannot be created.
+pub fn unpack(codec: &Codec, dest: &Path, out: &Path, png: PngEffort, overwrite: Overwrite) -> Result<UnpackReport> {
     let cat = Catalog::open_existing(&dest.join(CATALOG_FILE))?;
     let entries = cat.all()?;
-    entries.par_iter().try_for_each(|e| -> Result<()> {
-        let cpath = dest.join(&e.container_path);
-        let bytes = std::fs::read(&cpath).map_err(|err| KilnError::io(&cpath, err))?;
-        let pic = codec.decode(&bytes)?;
-        let target = out.join(Path::new(&e.rel_path).with_extension("png"));
-        if let Some(parent) = target.parent() {
-            std::fs::create_dir_all(parent).map_err(|err| KilnError::io(parent, err))?;
+    std::fs::create_dir_all(out).map_err(|e| KilnError::io(out, e))?;
+    // One restored name per row: a second row that maps to a name already taken is refused.
+    let mut taken = std::collections::HashMap::new();
+    let mut problems = Vec::new();
+    let mut jobs = Vec::new();
+    for e in &entries {
+        let name = restored_name(&e.rel_path);
+        match safe_relative(&name) {
+            Err(err) => problems.push(Mismatch { rel_path: e.rel_path.clone(), problem: first_line(&err) }),
+            Ok(rel) => match taken.insert(rel.clone(), e.rel_path.clone()) {
+                Some(first) => problems.push(Mismatch {
+                    rel_path: e.rel_path.clone(),
+                    problem: format!("restores to {}, the name {first} restores to; not written", rel.display()),
+                }),
+                None => jobs.push((e, rel)),
+            },
         }
-        write_atomic(&target, &pic.to_png_with(png)?)
-    })?;
-    Ok(entries.len())
+    }
+    let results: Vec<std::result::Result<(), Mismatch>> = jobs
+        .par_iter()
+        .map(|(e, rel)| {
+            let fail = |problem: String| Mismatch { rel_path: e.rel_path.clone(), problem };
+            let pic = decode_entry(codec, dest, e).map_err(fail)?;
+            let bytes = pic.to_png_with(png).map_err(|err| fail(first_line(&err)))?;
+            create_parents_within(out, rel).map_err(|err| fail(first_line(&err)))?;
+            write_output(&out.join(rel), &bytes, overwrite, &[]).map_err(|err| fail(first_line(&err)))
+        })
+        .collect();
+    let mut restored = 0;
+    for r in results {
+        match r {
+            Ok(()) => restored += 1,
+            Err(m) => problems.push(m),
+        }
+    }
+    problems.sort_by(|a, b| a.rel_path.cmp(&b.rel_path));
+    Ok(UnpackReport { restored, problems })
 }
 
 /// Archive totals.
@@ -433,10 +617,14 @@ pub struct Stats {
     pub ratio_vs_source: f64,
     /// PNG bytes / Kiln bytes.
     pub ratio_vs_png: f64,
-    /// Mean PSNR (dB).
-    pub mean_psnr: f64,
-    /// Lowest PSNR (dB).
-    pub worst_psnr: f64,
+    /// Mean PSNR (dB) over files with a finite PSNR; `None` if there are none.
+    pub mean_psnr: Option<f64>,
+    /// Lowest PSNR (dB); `None` if no file has a finite PSNR.
+    pub worst_psnr: Option<f64>,
+    /// Files under the source the last pack did not archive for an error.
+    pub skipped_errors: usize,
+    /// Other entries under the source left alone (not images, links, special files).
+    pub skipped_notes: usize,
     /// The file with the lowest PSNR.
     pub worst_file: Option<String>,
 }
@@ -445,6 +633,7 @@ pub struct Stats {
 pub fn stats(dest: &Path) -> Result<Stats> {
     let cat = Catalog::open_existing(&dest.join(CATALOG_FILE))?;
     let e = cat.all()?;
+    let skipped = cat.skipped()?;
     let sum = |f: fn(&Entry) -> u64| e.iter().map(f).sum::<u64>();
     let (src, png, kiln) = (sum(|x| x.source_size), sum(|x| x.png_size), sum(|x| x.container_size));
     let finite: Vec<&Entry> = e.iter().filter(|x| x.psnr.is_finite()).collect();
@@ -456,14 +645,17 @@ pub fn stats(dest: &Path) -> Result<Stats> {
         kiln_bytes: kiln,
         ratio_vs_source: src as f64 / kiln.max(1) as f64,
         ratio_vs_png: png as f64 / kiln.max(1) as f64,
-        mean_psnr: finite.iter().map(|x| x.psnr).sum::<f64>() / finite.len().max(1) as f64,
-        worst_psnr: worst.map(|x| x.psnr).unwrap_or(f64::NAN),
+        mean_psnr: (!finite.is_empty()).then(|| finite.iter().map(|x| x.psnr).sum::<f64>() / finite.len() as f64),
+        worst_psnr: worst.map(|x| x.psnr),
+        skipped_errors: skipped.iter().filter(|r| r.error).count(),
+        skipped_notes: skipped.iter().filter(|r| !r.error).count(),
         worst_file: worst.map(|x| x.rel_path.clone()),
     })
 }
 
-/// Unites every shard catalog in `dest` into `catalog.sqlite`; returns the number of rows.
-pub fn merge_catalogs(dest: &Path) -> Result<usize> {
+/// Unites every shard catalog in `dest` into `catalog.sqlite`; returns the number of rows and
+/// the rows refused because a stored path could lead outside the archive.
+pub fn merge_catalogs(dest: &Path) -> Result<(usize, Vec<Mismatch>)> {
     let mut shards: Vec<PathBuf> = std::fs::read_dir(dest)
         .map_err(|e| KilnError::io(dest, e))?
         .flatten()
@@ -482,14 +674,21 @@ pub fn merge_catalogs(dest: &Path) -> Result<usize> {
         )));
     }
     let mut merged = Catalog::open(&dest.join(CATALOG_FILE))?;
+    let mut skipped = Vec::new();
+    let mut refused = Vec::new();
     for s in &shards {
         let c = Catalog::open_existing(s)?;
         if let Some(root) = c.meta("source_root")? {
             merged.set_meta("source_root", &root)?;
         }
         for e in c.all()? {
-            merged.put(&e)?;
+            match safe_relative(&e.container_path).and_then(|_| safe_relative(&e.rel_path)) {
+                Ok(_) => merged.put(&e)?,
+                Err(err) => refused.push(Mismatch { rel_path: e.rel_path.clone(), problem: first_line(&err) }),
+            }
         }
+        skipped.extend(c.skipped()?);
     }
-    Ok(merged.all()?.len())
+    merged.set_skipped(&skipped)?;
+    Ok((merged.all()?.len(), refused))
 }

@@ -4,6 +4,7 @@ use std::path::PathBuf;
 
 use clap::{Args, Subcommand};
 use kiln::archive::{self, PackOptions, Shard, Target};
+use kiln::files::Overwrite;
 use kiln::{Codec, ModelFile};
 
 use super::refine_args::RefineArgs;
@@ -28,9 +29,13 @@ pub struct PackArgs {
     model: Option<PathBuf>,
     #[command(flatten)]
     refine: RefineArgs,
-    /// Images in parallel.
-    #[arg(long, default_value_t = 2)]
-    jobs: usize,
+    /// Images in parallel (1–256).
+    #[arg(long, default_value_t = 2, value_parser = clap::value_parser!(u16).range(1..=256))]
+    jobs: u16,
+    /// Follow symbolic links under the source whose targets lie inside it (each folder once;
+    /// links to outside the source are listed as skipped). Off: links are listed as skipped.
+    #[arg(long)]
+    follow_symlinks: bool,
     /// Take a deterministic share I/N of the files (for array jobs); writes its own catalog shard.
     #[arg(long)]
     shard: Option<String>,
@@ -67,41 +72,79 @@ pub fn pack(a: PackArgs) -> anyhow::Result<()> {
     if let Target::Quality(q) = target {
         kiln::model::config::check_quality(q)?;
     }
+    match target {
+        Target::Psnr(db) if !(db.is_finite() && db > 0.0 && db <= 100.0) => {
+            anyhow::bail!("--target-psnr {db}: expected a PSNR in dB between 0 and 100")
+        }
+        Target::Bpp(b) if !(b.is_finite() && b > 0.0 && b <= 64.0) => {
+            anyhow::bail!("--target-bpp {b}: expected bits per pixel between 0 and 64")
+        }
+        _ => {}
+    }
     let shard = a.shard.as_deref().map(Shard::parse).transpose()?;
     let codec = a.refine.apply(codec(a.model.as_deref())?)?;
-    let o = PackOptions { src: a.src, dest: a.dest.clone(), target, jobs: a.jobs, shard, progress: true };
+    let o = PackOptions {
+        src: a.src,
+        dest: a.dest.clone(),
+        target,
+        jobs: a.jobs as usize,
+        shard,
+        progress: true,
+        follow_symlinks: a.follow_symlinks,
+    };
     let r = archive::pack(&codec, &o)?;
+    for (f, why, error) in &r.skipped {
+        eprintln!("  {}: {f}: {why}", if *error { "not packed" } else { "skipped" });
+    }
+    for f in &r.repaired {
+        eprintln!("  repaired: {f}: its container failed its checks and was re-encoded");
+    }
+    for (f, why) in &r.failed {
+        eprintln!("  failed: {f}: {why}");
+    }
+    let errors = r.skipped.iter().filter(|s| s.2).count() + r.failed.len();
     eprintln!(
-        "packed {}, unchanged {}, failed {}; catalog {}",
+        "packed {}, unchanged {}, repaired {}, failed {}, skipped {}; catalog {}",
         r.packed,
         r.unchanged,
-        r.failed.len(),
+        r.repaired.len(),
+        errors,
+        r.skipped.len() - r.skipped.iter().filter(|s| s.2).count(),
         archive::catalog_path(&a.dest, shard).display()
     );
-    if !r.failed.is_empty() {
-        for (f, why) in &r.failed {
-            eprintln!("  failed: {f}: {why}");
-        }
-        anyhow::bail!("{} file(s) could not be packed (listed above); the rest were packed", r.failed.len());
+    if r.has_errors() {
+        anyhow::bail!("{errors} file(s) under the source were not archived (listed above); the rest were packed");
     }
     Ok(())
 }
 
 pub fn verify(a: ArchiveArgs) -> anyhow::Result<()> {
-    let (n, problems) = archive::verify(&codec(a.model.as_deref())?, &a.dest)?;
-    for p in &problems {
+    let r = archive::verify(&codec(a.model.as_deref())?, &a.dest)?;
+    for p in &r.problems {
         eprintln!("  mismatch: {}: {}", p.rel_path, p.problem);
     }
-    if !problems.is_empty() {
-        anyhow::bail!("{} of {n} file(s) failed verification (listed above)", problems.len());
+    let not_archived = r.skipped.iter().filter(|s| s.2).count();
+    if not_archived > 0 {
+        eprintln!(
+            "note: {not_archived} file(s) under the source were not archived by the last pack (`kiln stats` counts them; the pack run listed them)"
+        );
     }
-    eprintln!("verified {n} file(s): all containers decode and match the catalog");
+    if !r.problems.is_empty() {
+        anyhow::bail!("{} of {} file(s) failed verification (listed above)", r.problems.len(), r.files);
+    }
+    eprintln!("verified {} file(s): all containers decode and match the catalog", r.files);
     Ok(())
 }
 
-pub fn unpack(a: ArchiveArgs, out: PathBuf, png: kiln::PngEffort) -> anyhow::Result<()> {
-    let n = archive::unpack(&codec(a.model.as_deref())?, &a.dest, &out, png)?;
-    eprintln!("unpacked {n} file(s) to {}", out.display());
+pub fn unpack(a: ArchiveArgs, out: PathBuf, png: kiln::PngEffort, force: bool) -> anyhow::Result<()> {
+    let r = archive::unpack(&codec(a.model.as_deref())?, &a.dest, &out, png, Overwrite::from_force(force))?;
+    for p in &r.problems {
+        eprintln!("  not restored: {}: {}", p.rel_path, p.problem);
+    }
+    eprintln!("unpacked {} file(s) to {}", r.restored, out.display());
+    if !r.problems.is_empty() {
+        anyhow::bail!("{} file(s) could not be restored (listed above); the rest were", r.problems.len());
+    }
     Ok(())
 }
 
@@ -116,8 +159,10 @@ pub fn stats(dest: PathBuf, json: bool) -> anyhow::Result<()> {
         println!("Kiln bytes       {}", s.kiln_bytes);
         println!("ratio vs source  {:.2}×", s.ratio_vs_source);
         println!("ratio vs PNG     {:.2}×", s.ratio_vs_png);
-        println!("mean PSNR        {:.2} dB", s.mean_psnr);
-        println!("worst PSNR       {:.2} dB ({})", s.worst_psnr, s.worst_file.as_deref().unwrap_or("-"));
+        let db = |v: Option<f64>| v.map_or("n/a".to_string(), |v| format!("{v:.2} dB"));
+        println!("mean PSNR        {}", db(s.mean_psnr));
+        println!("worst PSNR       {} ({})", db(s.worst_psnr), s.worst_file.as_deref().unwrap_or("-"));
+        println!("not archived     {} (errors), {} other entries skipped", s.skipped_errors, s.skipped_notes);
     }
     Ok(())
 }
@@ -125,8 +170,14 @@ pub fn stats(dest: PathBuf, json: bool) -> anyhow::Result<()> {
 pub fn catalog(c: CatalogCommand) -> anyhow::Result<()> {
     match c {
         CatalogCommand::Merge { dest } => {
-            let n = archive::merge_catalogs(&dest)?;
+            let (n, refused) = archive::merge_catalogs(&dest)?;
+            for p in &refused {
+                eprintln!("  refused: {}: {}", p.rel_path, p.problem);
+            }
             eprintln!("merged catalog has {n} file(s): {}", dest.join(archive::catalog::CATALOG_FILE).display());
+            if !refused.is_empty() {
+                anyhow::bail!("{} row(s) of the shard catalogs were refused (listed above)", refused.len());
+            }
             Ok(())
         }
     }

@@ -1,11 +1,13 @@
 //! `kiln compress` and `kiln decompress`.
 
-use std::path::PathBuf;
+use std::io::Write;
+use std::path::{Path, PathBuf};
 
 use anyhow::Context;
 use clap::Args;
-use kiln::image_io::write_atomic;
-use kiln::{AlphaPolicy, Codec, KilnError, ModelFile, Picture, PngEffort};
+use kiln::files::{Overwrite, restored_os_name, write_output};
+use kiln::image_io::read_regular;
+use kiln::{AlphaPolicy, Codec, ModelFile, Picture, PngEffort};
 
 use super::refine_args::RefineArgs;
 
@@ -13,9 +15,12 @@ use super::refine_args::RefineArgs;
 pub struct CompressArgs {
     /// Image to compress (any format the image crate reads).
     input: PathBuf,
-    /// Output container (default: the input with extension .kiln).
+    /// Output container (default: the input's name with `.kiln` appended; `-` for standard output).
     #[arg(short, long)]
     output: Option<PathBuf>,
+    /// Replace the output if it exists (never one of the inputs, never a non-regular file).
+    #[arg(long)]
+    force: bool,
     /// Quality from 1 (smallest file) to 100 (best fidelity); fractions allowed.
     #[arg(short, long, default_value_t = 75.0)]
     quality: f32,
@@ -36,9 +41,13 @@ pub struct CompressArgs {
 pub struct DecompressArgs {
     /// Container to decompress.
     input: PathBuf,
-    /// Output PNG (default: the input with extension .png).
+    /// Output PNG (default: the container's name without `.kiln`, ending in `.png`:
+    /// `a.png.kiln` → `a.png`, `a.jpg.kiln` → `a.jpg.png`; `-` for standard output).
     #[arg(short, long)]
     output: Option<PathBuf>,
+    /// Replace the output if it exists (never the input, never a non-regular file).
+    #[arg(long)]
+    force: bool,
     /// Model file the container was written with (default: the embedded model).
     #[arg(long)]
     model: Option<PathBuf>,
@@ -47,14 +56,59 @@ pub struct DecompressArgs {
     png: PngEffort,
 }
 
+/// Where a command's single output goes.
+enum Sink {
+    Stdout,
+    File(PathBuf),
+}
+
+impl Sink {
+    fn new(explicit: Option<PathBuf>, default: impl FnOnce() -> PathBuf) -> Self {
+        match explicit {
+            Some(p) if p.as_os_str() == "-" => Sink::Stdout,
+            Some(p) => Sink::File(p),
+            None => Sink::File(default()),
+        }
+    }
+
+    /// Refuses an output that could not be written, before any work is done.
+    fn check(&self, force: bool, input: &Path) -> anyhow::Result<()> {
+        if let Sink::File(p) = self {
+            kiln::files::check_output(p, Overwrite::from_force(force), &[input])?;
+        }
+        Ok(())
+    }
+
+    fn write(&self, bytes: &[u8], force: bool, input: &Path) -> anyhow::Result<()> {
+        match self {
+            Sink::Stdout => {
+                let mut out = std::io::stdout().lock();
+                out.write_all(bytes).and_then(|()| out.flush()).context("writing to standard output")?;
+            }
+            Sink::File(p) => write_output(p, bytes, Overwrite::from_force(force), &[input])?,
+        }
+        Ok(())
+    }
+}
+
+fn with_suffix(path: &Path, suffix: &str) -> PathBuf {
+    let mut s = path.as_os_str().to_os_string();
+    s.push(suffix);
+    PathBuf::from(s)
+}
+
 pub fn compress(a: CompressArgs) -> anyhow::Result<()> {
     kiln::model::config::check_quality(a.quality)?;
+    let sink = Sink::new(a.output, || with_suffix(&a.input, ".kiln"));
+    if matches!(sink, Sink::Stdout) && a.stats {
+        anyhow::bail!("--stats and `-o -` both write to standard output\nhint: write the container to a file");
+    }
+    sink.check(a.force, &a.input)?;
     let alpha = if a.drop_alpha { AlphaPolicy::Drop } else { AlphaPolicy::Refuse };
     let pic = Picture::open(&a.input, alpha)?;
     let codec = a.refine.apply(Codec::new(ModelFile::load(a.model.as_deref())?)?)?;
     let enc = codec.encode(&pic, a.quality)?;
-    let out = a.output.unwrap_or_else(|| a.input.with_extension("kiln"));
-    write_atomic(&out, &enc.bytes)?;
+    sink.write(&enc.bytes, a.force, &a.input)?;
     if a.stats {
         println!("{}", serde_json::to_string(&enc.stats(pic.width, pic.height, a.quality))?);
     }
@@ -62,10 +116,14 @@ pub fn compress(a: CompressArgs) -> anyhow::Result<()> {
 }
 
 pub fn decompress(a: DecompressArgs) -> anyhow::Result<()> {
-    let bytes = std::fs::read(&a.input).map_err(|e| KilnError::io(&a.input, e))?;
+    let sink = Sink::new(a.output, || {
+        let name = a.input.file_name().unwrap_or(std::ffi::OsStr::new("decoded"));
+        a.input.with_file_name(restored_os_name(name))
+    });
+    sink.check(a.force, &a.input)?;
+    let bytes = read_regular(&a.input)?;
     let codec = Codec::new(ModelFile::load(a.model.as_deref())?)?;
     let pic = codec.decode(&bytes).with_context(|| format!("{}", a.input.display()))?;
-    let out = a.output.unwrap_or_else(|| a.input.with_extension("png"));
-    write_atomic(&out, &pic.to_png_with(a.png)?)?;
+    sink.write(&pic.to_png_with(a.png)?, a.force, &a.input)?;
     Ok(())
 }

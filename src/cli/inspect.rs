@@ -7,12 +7,24 @@ use kiln::{KilnError, container};
 use serde_json::json;
 
 pub fn inspect(file: &Path, as_json: bool) -> anyhow::Result<()> {
-    let bytes = if file.as_os_str() == "default" {
-        DEFAULT_MODEL_BYTES.to_vec()
+    let bytes =
+        if file.as_os_str() == "default" { DEFAULT_MODEL_BYTES.to_vec() } else { kiln::image_io::read_regular(file)? };
+    let value = if bytes.starts_with(&container::MAGIC) {
+        container_json(&bytes)?
+    } else if let Ok(format) = image::guess_format(&bytes) {
+        anyhow::bail!(
+            "{} is a {format:?} image, not a Kiln container or model file\nhint: `kiln compress` makes a container from it",
+            file.display()
+        );
     } else {
-        std::fs::read(file).map_err(|e| KilnError::io(file, e))?
+        model_json(&bytes).map_err(|e| match e.downcast::<KilnError>() {
+            Ok(KilnError::BadModel(m)) => {
+                anyhow::anyhow!("{} is neither a Kiln container nor a usable model file: {m}", file.display())
+            }
+            Ok(other) => other.into(),
+            Err(other) => other,
+        })?
     };
-    let value = if bytes.starts_with(&container::MAGIC) { container_json(&bytes)? } else { model_json(&bytes)? };
     if as_json {
         println!("{}", serde_json::to_string_pretty(&value)?);
     } else {

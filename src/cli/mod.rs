@@ -48,6 +48,9 @@ enum Command {
         /// PNG writer effort: `fast`, or `smallest` (several times slower, files about a quarter smaller).
         #[arg(long, value_enum, default_value = "fast")]
         png: kiln::PngEffort,
+        /// Replace files that already exist in the output folder (regular files only).
+        #[arg(long)]
+        force: bool,
     },
     /// Totals of an archive.
     Stats {
@@ -73,7 +76,7 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
         Command::Evaluate(a) => evaluate::evaluate(a),
         Command::Pack(a) => archive::pack(a),
         Command::Verify(a) => archive::verify(a),
-        Command::Unpack { archive: a, out, png } => archive::unpack(a, out, png),
+        Command::Unpack { archive: a, out, png, force } => archive::unpack(a, out, png, force),
         Command::Stats { dest, json } => archive::stats(dest, json),
         Command::Catalog(c) => archive::catalog(c),
         Command::Train(a) => train::train(*a),

@@ -103,6 +103,10 @@ pub struct TrainArgs {
     /// Print plain log lines instead of a progress bar.
     #[arg(long)]
     log: bool,
+    /// Replace an existing model or checkpoint of another run at --out / --checkpoint (a resumed
+    /// run always writes its own again).
+    #[arg(long)]
+    force: bool,
 }
 
 fn parse_config(s: &str) -> anyhow::Result<ModelConfig> {
@@ -149,6 +153,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         encoder_only: a.encoder_only,
         rounded_rate: a.rounded_rate,
         progress: !a.log,
+        force: a.force,
     };
     kiln::train::train(&opts)?;
     Ok(())

@@ -22,10 +22,11 @@
 //! | L | … | per tile: hyper stream, then latent stream (ANS words, `u32` LE) |
 //! | end−4 | 4 | CRC-32 of every byte before it |
 //!
-//! A tile's latent shape is `(M, ⌈th/16⌉, ⌈tw/16⌉)` and its hyper-latent shape
-//! `(Nz, ⌈⌈th/16⌉/4⌉, ⌈⌈tw/16⌉/4⌉)` for tile size `tw × th`; files written before the latent was
-//! cropped to the tile carry `(M, 4·hz, 4·wz)` instead, and decoders accept both (the codec
-//! checks the shapes; this module only reads them).
+//! A tile's latent shape is `(M, ⌈th/s⌉, ⌈tw/s⌉)` and its hyper-latent shape
+//! `(Nz, ⌈⌈th/s⌉/4⌉, ⌈⌈tw/s⌉/4⌉)` for tile size `tw × th` and the model's latent stride `s`
+//! (8 or 16 for the shipped models); files written before the latent was cropped to the tile
+//! carry `(M, 4·hz, 4·wz)` instead, and decoders accept both (the codec checks the shapes
+//! against the model; this module only reads them).
 //!
 //! Tiles are decoded independently, so a later version can decode a region without the rest
 //! and bound memory for very large images; version-1 writers use one tile unless the image is
@@ -39,8 +40,10 @@
 //!
 //! # Caps
 //! - width, height ≤ [`MAX_SIDE`] (65 535); width·height ≤ [`MAX_PIXELS`] (2^28 ≈ 268 Mpx);
-//! - tile sides ≤ [`MAX_TILE_SIDE`] (4096); tile count ≤ [`MAX_TILES`];
-//! - streams: each a multiple of 4 bytes; all of them plus header and trailer = file size.
+//! - tile sides ≤ [`MAX_TILE_SIDE`] (1536, the largest tile a writer produces); tile count ≤ [`MAX_TILES`];
+//! - streams: each a multiple of 4 bytes and **not empty** (every tile codes at least one
+//!   value, and a writer refuses to produce an empty stream, see [`write`]); all of them plus
+//!   header and trailer = file size.
 
 use byteorder::{ByteOrder, LittleEndian, ReadBytesExt, WriteBytesExt};
 
@@ -54,10 +57,28 @@ pub const FORMAT_VERSION: u16 = 1;
 pub const MAX_SIDE: u32 = 65_535;
 /// Largest accepted pixel count.
 pub const MAX_PIXELS: u64 = 1 << 28;
-/// Largest accepted tile side.
-pub const MAX_TILE_SIDE: u32 = 4096;
 /// Images up to this many pixels on both sides are written as a single tile.
 pub const SINGLE_TILE_MAX: u32 = 1536;
+/// Largest accepted tile side: the largest tile a version-1 writer produces
+/// ([`SINGLE_TILE_MAX`]). It bounds the decoder's working memory per tile (see
+/// [`decode_memory_bound`]) whatever a file claims.
+pub const MAX_TILE_SIDE: u32 = SINGLE_TILE_MAX;
+/// Working memory of the decoder per pixel of a tile, in bytes: an upper bound on the widest
+/// synthesis layer's input and output at full resolution for the shipped configurations
+/// (N = 64 hidden channels as `f32`, in and out of a layer, plus the latent and its priors),
+/// with room for N up to 96. Measured peak resident memory for one 1536×1536 tile of the
+/// stride-8 default stays below it (see `tests/hostile_inputs.rs`).
+pub const DECODE_BYTES_PER_TILE_PIXEL: u64 = 1024;
+
+/// Upper bound on the decoder's working memory for a container with this header: the output
+/// image (`width · height · channels` bytes) plus one tile's working set
+/// (`tile_width · tile_height ·` [`DECODE_BYTES_PER_TILE_PIXEL`]); tiles are decoded one at a
+/// time. With the caps this is at most 805 MB + 2.4 GB for the largest image, and 7 MB + 2.4 GB
+/// for a single 1536×1536 tile; the real figure for a model is smaller by its width.
+pub fn decode_memory_bound(h: &Header) -> u64 {
+    h.width as u64 * h.height as u64 * h.channels as u64
+        + h.tile_width as u64 * h.tile_height as u64 * DECODE_BYTES_PER_TILE_PIXEL
+}
 /// Tile side used for larger images.
 pub const TILE_SIDE: u32 = 1024;
 /// Largest accepted tile count.
@@ -169,9 +190,19 @@ fn words_to_bytes(words: &[u32], out: &mut Vec<u8>) {
 }
 
 /// Serializes a container. `header.tiles[i]`'s stream lengths are filled in from `streams[i]`.
+///
+/// # Errors
+/// Geometry outside the caps, or an empty stream: readers refuse empty streams (an ANS coder
+/// leaves its stream empty only if every value it coded was the first symbol of its table,
+/// which an image's latent never is), so writing one would leave an undecodable file.
 pub fn write(header: &Header, streams: &[TileStreams]) -> Result<Vec<u8>> {
     check_geometry(header.width, header.height, header.channels, header.bit_depth)?;
     assert_eq!(header.tiles.len(), streams.len(), "one stream pair per tile");
+    if streams.iter().any(|s| s.hyper.is_empty() || s.latent.is_empty()) {
+        return Err(KilnError::UnsupportedImage(
+            "the entropy coder produced an empty stream, which no reader accepts; not written".into(),
+        ));
+    }
     let header_len = FIXED_LEN + TILE_RECORD_LEN * header.tiles.len() + 4;
     let mut out = Vec::with_capacity(
         header_len + streams.iter().map(|s| 4 * (s.hyper.len() + s.latent.len())).sum::<usize>() + 4,
@@ -287,6 +318,9 @@ pub fn read(bytes: &[u8]) -> Result<(Header, Vec<TileStreams>)> {
         };
         if !t.hyper_bytes.is_multiple_of(4) || !t.latent_bytes.is_multiple_of(4) {
             return Err(corrupt(format!("tile {i}: stream length not a multiple of 4")));
+        }
+        if t.hyper_bytes == 0 || t.latent_bytes == 0 {
+            return Err(corrupt(format!("tile {i}: empty entropy-coded stream")));
         }
         payload += t.hyper_bytes as u64 + t.latent_bytes as u64;
         tiles.push(t);

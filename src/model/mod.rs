@@ -374,7 +374,22 @@ impl ModelFile {
             .map_err(|e| KilnError::BadModel(format!("kiln.config: {e}")))?;
         let training: TrainingSummary =
             meta.get("kiln.training").and_then(|s| serde_json::from_str(s).ok()).unwrap_or_default();
+        config.validate()?;
         let tensors = candle_core::safetensors::load_buffer(bytes, &Device::Cpu)?;
+        // Every shape is checked against the config by building the network over the file's own
+        // tensors first (nothing is allocated beyond what the file holds), so a config that
+        // claims more channels than the file carries is refused before its weights are made.
+        Model::build_with(
+            config.clone(),
+            VarBuilder::from_tensors(tensors.clone(), DType::F32, &Device::Cpu),
+            VarMap::new(),
+        )
+        .map_err(|e| KilnError::BadModel(format!("the weights do not match the config: {}", first_line(&e))))?;
+        for (name, t) in &tensors {
+            if t.dtype().is_float() && !all_finite(t)? {
+                return Err(KilnError::BadModel(format!("weight {name} holds NaN or infinite values")));
+            }
+        }
         let model = Model::build(config)?;
         model.load_weights(&tensors)?;
         let tables = EntropyTables::from_tensors(&tensors)?;
@@ -385,11 +400,45 @@ impl ModelFile {
     }
 
     /// Reads `path`, or the embedded default for `None` or the word `default`.
+    ///
+    /// # Errors
+    /// I/O errors naming the path (special files are refused, not read); [`KilnError::BadModel`]
+    /// for a file over [`MODEL_FILE_MAX_BYTES`] or one [`ModelFile::from_bytes`] refuses.
     pub fn load(path: Option<&std::path::Path>) -> Result<Self> {
         match path {
             None => Self::from_bytes(DEFAULT_MODEL_BYTES),
             Some(p) if p.as_os_str() == "default" => Self::from_bytes(DEFAULT_MODEL_BYTES),
-            Some(p) => Self::from_bytes(&std::fs::read(p).map_err(|e| KilnError::io(p, e))?),
+            Some(p) => {
+                let len = std::fs::metadata(p).map_err(|e| KilnError::io(p, e))?.len();
+                if len > MODEL_FILE_MAX_BYTES {
+                    return Err(KilnError::BadModel(format!(
+                        "{} is {len} bytes; model files above {MODEL_FILE_MAX_BYTES} bytes are not supported",
+                        p.display()
+                    )));
+                }
+                let bytes = crate::image_io::read_regular(p).map_err(|e| match e {
+                    KilnError::UnsupportedImage(m) => KilnError::BadModel(m),
+                    other => other,
+                })?;
+                Self::from_bytes(&bytes).map_err(|e| match e {
+                    KilnError::BadModel(m) => KilnError::BadModel(format!("{}: {m}", p.display())),
+                    other => other,
+                })
+            }
         }
     }
+}
+
+/// Largest model file Kiln reads (the shipped models are about 5 MB; 1024 channels everywhere
+/// would still fit).
+pub const MODEL_FILE_MAX_BYTES: u64 = 1 << 30;
+
+fn first_line(e: &KilnError) -> String {
+    e.to_string().lines().next().unwrap_or("").to_string()
+}
+
+/// Whether every element of a float tensor is finite.
+fn all_finite(t: &Tensor) -> Result<bool> {
+    let v = t.to_dtype(DType::F32)?.flatten_all()?.to_vec1::<f32>()?;
+    Ok(v.iter().all(|x| x.is_finite()))
 }

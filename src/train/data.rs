@@ -1,6 +1,6 @@
 //! Training images: loading folders, random crops and flips.
 
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 
 use candle_core::{Device, Tensor};
 use rand::Rng;
@@ -9,39 +9,21 @@ use rand_chacha::ChaCha8Rng;
 use crate::error::{KilnError, Result};
 use crate::image_io::{AlphaPolicy, Picture};
 
-/// Extensions looked at when walking folders.
-pub const IMAGE_EXTENSIONS: [&str; 9] = ["png", "jpg", "jpeg", "bmp", "tif", "tiff", "webp", "ppm", "pgm"];
-
-/// All image files under `dirs` (folders searched recursively; files taken as given), sorted
-/// so runs are reproducible.
+/// All image files under `dirs` (folders listed with [`crate::source_tree::list_source`]:
+/// symbolic links and special files left alone, images recognised by content; files taken as
+/// given), sorted so runs are reproducible.
 pub fn list_images(dirs: &[PathBuf]) -> Result<Vec<PathBuf>> {
     let mut out = Vec::new();
     for d in dirs {
         if d.is_file() {
             out.push(d.clone());
         } else {
-            walk(d, &mut out)?;
+            let root = d.canonicalize().map_err(|e| KilnError::io(d, e))?;
+            out.extend(crate::source_tree::list_source(&root, false)?.files.into_iter().map(|f| f.path));
         }
     }
     out.sort();
     Ok(out)
-}
-
-fn walk(dir: &Path, out: &mut Vec<PathBuf>) -> Result<()> {
-    let entries = std::fs::read_dir(dir).map_err(|e| KilnError::io(dir, e))?;
-    for entry in entries {
-        let path = entry.map_err(|e| KilnError::io(dir, e))?.path();
-        if path.is_dir() {
-            walk(&path, out)?;
-        } else if path
-            .extension()
-            .and_then(|e| e.to_str())
-            .is_some_and(|e| IMAGE_EXTENSIONS.contains(&e.to_ascii_lowercase().as_str()))
-        {
-            out.push(path);
-        }
-    }
-    Ok(())
 }
 
 /// Decoded RGB training images held in memory.

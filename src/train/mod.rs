@@ -14,7 +14,7 @@ pub mod stages;
 pub mod widen;
 
 use std::collections::HashMap;
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Instant;
 
@@ -24,13 +24,14 @@ use rand_chacha::ChaCha8Rng;
 
 use crate::codec::Codec;
 use crate::error::{KilnError, Result};
+use crate::files::{Overwrite, check_output};
 use crate::image_io::write_atomic;
 use crate::metrics::psnr;
 use crate::model::config::HYPER_STRIDE_MAX;
 use crate::model::gain::{GAIN_TABLES, retarget_rows};
 use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix, is_encoder_weight};
 use checkpoint::{CheckpointMeta, LatentWarmup};
-use data::ImageSet;
+use data::{ImageSet, list_images};
 pub use distortion::Distortion;
 use optim::{Adam, AdamConfig};
 
@@ -120,6 +121,8 @@ pub struct TrainOptions {
     /// (likely cause, not isolated: the hyper-analysis follows the straight-through gradient of
     /// the rounded hyper-latent).
     pub rounded_rate: bool,
+    /// Replace an existing `out` or `checkpoint` of another run (a resumed run replaces its own).
+    pub force: bool,
     /// Show a progress bar.
     pub progress: bool,
 }
@@ -333,7 +336,81 @@ fn uniform_noise(rng: &mut ChaCha8Rng, shape: &[usize]) -> Result<Tensor> {
 }
 
 /// Trains (or resumes, or fine-tunes) and exports the model to `o.out`.
+/// Range checks of every numeric option, and of the output paths, done before any image is
+/// read: a typo must not cost a training run.
+///
+/// # Errors
+/// [`KilnError::InvalidArgument`] stating the valid range, or the output-path errors of
+/// [`crate::files::check_output`].
+pub fn validate_options(o: &TrainOptions) -> Result<()> {
+    let bad = |m: String| Err(KilnError::InvalidArgument(m));
+    let in_range = |v: f64, lo: f64, hi: f64| v.is_finite() && v >= lo && v <= hi;
+    if !(1..=1024).contains(&o.batch) {
+        return bad(format!("batch {} is outside 1..=1024", o.batch));
+    }
+    if o.steps == 0 {
+        return bad("steps must be at least 1".into());
+    }
+    if !(in_range(o.lr, 0.0, 1.0) && o.lr > 0.0) {
+        return bad(format!("learning rate {} is not in (0, 1]", o.lr));
+    }
+    if !(in_range(o.clip, 0.0, 1e6) && o.clip > 0.0) {
+        return bad(format!("gradient clip {} is not a positive number (at most 1e6)", o.clip));
+    }
+    if !(in_range(o.decay_from, 0.0, 1.0) && o.decay_from > 0.0) {
+        return bad(format!("decay point {} is not a fraction of the run in (0, 1]", o.decay_from));
+    }
+    if !in_range(o.balance, 0.0, 4.0) {
+        return bad(format!("balance {} is outside 0..=4", o.balance));
+    }
+    if o.patch == 0 || o.patch > 4096 {
+        return bad(format!("patch {} is outside 64..=4096", o.patch));
+    }
+    if let Some(l) = &o.lambdas
+        && !l.iter().all(|v| v.is_finite() && *v > 0.0)
+    {
+        return bad(format!("trade-off anchors {l:?} must be positive numbers"));
+    }
+    for (what, v) in [("latent channels", o.latent_channels), ("hidden channels", o.hidden_channels)] {
+        if v.is_some_and(|v| !(1..=1024).contains(&v)) {
+            return bad(format!("{what} {} is outside 1..=1024", v.unwrap_or(0)));
+        }
+    }
+    if o.stages.is_some_and(|s| !(2..=4).contains(&s)) {
+        return bad(format!("stages {} is outside 2..=4", o.stages.unwrap_or(0)));
+    }
+    if let Some(v) = &o.val {
+        let has_images = list_images(std::slice::from_ref(v)).is_ok_and(|l| !l.is_empty());
+        if !has_images {
+            return bad(format!("the validation folder {} holds no images", v.display()));
+        }
+    }
+    let same = |a: &Path, b: &Path| a == b || matches!((a.canonicalize(), b.canonicalize()), (Ok(x), Ok(y)) if x == y);
+    if same(&o.out, &o.checkpoint) {
+        return bad(format!(
+            "the model ({}) and the checkpoint would be the same file\nhint: name the model .safetensors, or pass another checkpoint path",
+            o.out.display()
+        ));
+    }
+    let mut inputs: Vec<&Path> = Vec::new();
+    if let Some(r) = &o.resume {
+        inputs.push(r);
+    }
+    if let Init::FineTune(Some(m)) = &o.init {
+        inputs.push(m);
+    }
+    // A resumed run writes its own model and checkpoint again; a fresh one must not replace
+    // another run's files unless told to.
+    let own = if o.force || o.resume.is_some() { Overwrite::Replace } else { Overwrite::Refuse };
+    check_output(&o.out, own, &inputs)?;
+    let resumes_here = o.resume.as_deref().is_some_and(|r| same(r, &o.checkpoint));
+    let ck_policy = if o.force || resumes_here { Overwrite::Replace } else { Overwrite::Refuse };
+    let ck_inputs: Vec<&Path> = inputs.iter().copied().filter(|p| !(resumes_here && same(p, &o.checkpoint))).collect();
+    check_output(&o.checkpoint, ck_policy, &ck_inputs)
+}
+
 pub fn train(o: &TrainOptions) -> Result<TrainReport> {
+    validate_options(o)?;
     if o.patch == 0 || !o.patch.is_multiple_of(HYPER_STRIDE_MAX) {
         return Err(KilnError::InvalidArgument(format!(
             "--patch {} must be a positive multiple of {HYPER_STRIDE_MAX}",
@@ -350,9 +427,6 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
             "--encoder-only trains the encoder of an existing model\nhint: add --init MODEL or --resume CHECKPOINT"
                 .into(),
         ));
-    }
-    if o.batch == 0 || o.steps == 0 || o.lr.is_nan() || o.lr <= 0.0 {
-        return Err(KilnError::InvalidArgument("--batch, --steps and --lr must be positive".into()));
     }
     let data = ImageSet::load(&o.images, o.patch)?;
     if data.is_empty() {
