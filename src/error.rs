@@ -101,14 +101,17 @@ impl KilnError {
         KilnError::Io { path: path.into(), cause: source }
     }
 
-    /// Whether this error comes from the storage being unusable (disk full, quota exceeded,
-    /// read-only file system, no permission): retrying other files cannot succeed, so a batch
+    /// Whether this error comes from the storage being unusable (disk full, quota exceeded, file
+    /// size limit, read-only file system, no permission): retrying other files cannot succeed, so a batch
     /// job must stop.
     pub fn is_storage_failure(&self) -> bool {
         use std::io::ErrorKind as K;
         match self {
             KilnError::Io { cause, .. } => {
-                matches!(cause.kind(), K::StorageFull | K::QuotaExceeded | K::ReadOnlyFilesystem | K::PermissionDenied)
+                matches!(
+                    cause.kind(),
+                    K::StorageFull | K::QuotaExceeded | K::FileTooLarge | K::ReadOnlyFilesystem | K::PermissionDenied
+                )
             }
             KilnError::Catalog { storage, .. } => *storage,
             _ => false,
