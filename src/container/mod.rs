@@ -63,21 +63,27 @@ pub const SINGLE_TILE_MAX: u32 = 1536;
 /// ([`SINGLE_TILE_MAX`]). It bounds the decoder's working memory per tile (see
 /// [`decode_memory_bound`]) whatever a file claims.
 pub const MAX_TILE_SIDE: u32 = SINGLE_TILE_MAX;
-/// Working memory of the decoder per pixel of a tile, in bytes: an upper bound on the widest
-/// synthesis layer's input and output at full resolution for the shipped configurations
-/// (N = 64 hidden channels as `f32`, in and out of a layer, plus the latent and its priors),
-/// with room for N up to 96. Measured peak resident memory for one 1536×1536 tile of the
-/// stride-8 default stays below it (see `tests/hostile_inputs.rs`).
-pub const DECODE_BYTES_PER_TILE_PIXEL: u64 = 1024;
+/// Working memory of the decoder per pixel of a tile, in bytes, for models with up to 96
+/// hidden channels (the shipped ones have 64): the synthesis' widest activations as `f32` at
+/// half and full resolution, the latent, its priors and the output. A whole `kiln decompress`
+/// of one 1536×1536 tile with the stride-8 default peaks at about 240 bytes per pixel of
+/// resident memory, process included; `tests/hostile_inputs.rs` checks the bound.
+pub const DECODE_BYTES_PER_TILE_PIXEL: u64 = 512;
+
+/// Working memory of a decode that does not depend on the image (tile records, the priors'
+/// small buffers, the hyper-latent of a single position).
+pub const DECODE_FIXED_BYTES: u64 = 1 << 20;
 
 /// Upper bound on the decoder's working memory for a container with this header: the output
-/// image (`width · height · channels` bytes) plus one tile's working set
-/// (`tile_width · tile_height ·` [`DECODE_BYTES_PER_TILE_PIXEL`]); tiles are decoded one at a
-/// time. With the caps this is at most 805 MB + 2.4 GB for the largest image, and 7 MB + 2.4 GB
-/// for a single 1536×1536 tile; the real figure for a model is smaller by its width.
+/// image (`width · height · channels` bytes), plus one tile's working set — the tile padded to
+/// a multiple of 64 px on each side (the coarsest grid any model's latent and hyper-latent
+/// cover) times [`DECODE_BYTES_PER_TILE_PIXEL`] — plus [`DECODE_FIXED_BYTES`]; tiles are
+/// decoded one at a time. With the caps this is at most 805 MB + 1.2 GB for the largest image.
 pub fn decode_memory_bound(h: &Header) -> u64 {
+    let pad = |v: u32| (v as u64).div_ceil(64) * 64;
     h.width as u64 * h.height as u64 * h.channels as u64
-        + h.tile_width as u64 * h.tile_height as u64 * DECODE_BYTES_PER_TILE_PIXEL
+        + pad(h.tile_width) * pad(h.tile_height) * DECODE_BYTES_PER_TILE_PIXEL
+        + DECODE_FIXED_BYTES
 }
 /// Tile side used for larger images.
 pub const TILE_SIDE: u32 = 1024;
