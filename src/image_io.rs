@@ -68,9 +68,15 @@ impl Picture {
     pub fn open(path: &Path, alpha: AlphaPolicy) -> Result<Self> {
         let bytes = read_regular(path)?;
         let unsupported = |m: String| KilnError::UnsupportedImage(format!("{}: {m}", path.display()));
-        let reader =
+        let mut reader =
             ImageReader::new(Cursor::new(&bytes[..])).with_guessed_format().map_err(|e| KilnError::io(path, e))?;
-        let format = reader.format().ok_or_else(|| unsupported("not an image format Kiln reads".into()))?;
+        // The content decides; the extension is the fallback, so that a damaged file named
+        // like an image is reported as undecodable rather than as "not an image".
+        let format = reader
+            .format()
+            .or_else(|| ImageFormat::from_path(path).ok())
+            .ok_or_else(|| unsupported("not an image format Kiln reads".into()))?;
+        reader.set_format(format);
         if let Some(pages) = several_frames(&bytes, format) {
             return Err(unsupported(format!(
                 "has more than one {pages}; Kiln stores single images\nhint: split it into one file per {pages} first"

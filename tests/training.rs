@@ -278,6 +278,8 @@ fn resuming_with_one_stage_fewer_keeps_the_kept_layers_and_trains_a_stride_8_mod
     let out = tmp.path().join("m.safetensors");
     let mut o = options(tmp.path(), out.clone(), 10);
     train(&o).unwrap();
+    let four_stages = tmp.path().join("four-stages.ckpt");
+    std::fs::copy(out.with_extension("ckpt"), &four_stages).unwrap();
     let before = ModelFile::load(Some(&out)).unwrap();
     let weight = |f: &ModelFile, name: &str| -> Vec<f32> {
         let vars: std::collections::HashMap<_, _> = f.model.named_vars().into_iter().collect();
@@ -307,9 +309,15 @@ fn resuming_with_one_stage_fewer_keeps_the_kept_layers_and_trains_a_stride_8_mod
     assert_eq!(codec.decode(&enc.bytes).unwrap().width, 100);
     // Two stages less in one go is refused with a hint.
     o.steps = 16;
-    o.stages = Some(1);
+    o.resume = Some(four_stages.clone());
+    o.force = true; // the run's checkpoint is not the one it resumes from
+    o.stages = Some(2);
     let err = train(&o).unwrap_err();
     assert!(err.to_string().contains("can only lose one"), "{err}");
+    // A stage count no model can have is refused before any work.
+    o.stages = Some(1);
+    let err = train(&o).unwrap_err();
+    assert!(err.to_string().contains("outside 2..=4"), "{err}");
 }
 
 #[test]
