@@ -10,7 +10,7 @@ use std::process::{Command, Stdio};
 use std::time::Instant;
 
 use byteorder::{ByteOrder, LittleEndian};
-use common::{synthetic_picture, tiny_model_bytes};
+use common::{join_safetensors, split_safetensors, synthetic_picture, tiny_model_bytes};
 use kiln::container;
 
 /// Runs the binary; returns exit code, stderr and its peak resident memory in bytes. The child
@@ -122,17 +122,9 @@ fn a_legitimate_decode_stays_within_the_documented_memory_bound() {
 /// The tiny model's file with `edit` applied to its safetensors header (JSON), data unchanged.
 fn edit_model_header(edit: impl FnOnce(&mut serde_json::Value)) -> Vec<u8> {
     let bytes = tiny_model_bytes(8);
-    let n = LittleEndian::read_u64(&bytes[..8]) as usize;
-    let mut header: serde_json::Value = serde_json::from_slice(&bytes[8..8 + n]).unwrap();
+    let (mut header, data) = split_safetensors(&bytes);
     edit(&mut header);
-    let mut text = serde_json::to_vec(&header).unwrap();
-    while !text.len().is_multiple_of(8) {
-        text.push(b' ');
-    }
-    let mut out = (text.len() as u64).to_le_bytes().to_vec();
-    out.extend_from_slice(&text);
-    out.extend_from_slice(&bytes[8 + n..]);
-    out
+    join_safetensors(&header, data)
 }
 
 #[test]
@@ -158,11 +150,11 @@ fn a_model_file_is_checked_before_its_claims_are_allocated_and_must_hold_finite_
 
     // One weight set to NaN: refused by name.
     let bytes = tiny_model_bytes(8);
-    let n = LittleEndian::read_u64(&bytes[..8]) as usize;
-    let header: serde_json::Value = serde_json::from_slice(&bytes[8..8 + n]).unwrap();
+    let (header, data) = split_safetensors(&bytes);
     let start = header["g_s.0.weight"]["data_offsets"][0].as_u64().unwrap() as usize;
-    let mut nan = bytes.clone();
-    nan[8 + n + start..8 + n + start + 4].copy_from_slice(&f32::NAN.to_le_bytes());
+    let mut data = data.to_vec();
+    data[start..start + 4].copy_from_slice(&f32::NAN.to_le_bytes());
+    let nan = join_safetensors(&header, &data);
     let err = kiln::ModelFile::from_bytes(&nan).unwrap_err().to_string();
     assert!(err.contains("g_s.0.weight") && err.contains("NaN"), "{err}");
 }

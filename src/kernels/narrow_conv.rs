@@ -2,8 +2,8 @@
 //! vectorized across output positions.
 //!
 //! As a gemm, such a layer is a product with only 12 columns: too narrow for gemm's register
-//! tiles (the previous session's profile put it at about 34 ms of a 163 ms 768×512 decode, near
-//! 40 GFLOP/s, where the 64 → 256 layers ran at about 75% of matmul). Here each task holds the
+//! tiles, which then run far below their rate on the wider layers (`examples/decode_profile`
+//! times it step by step). Here each task holds the
 //! results of a run of output positions for *every* output channel in vector registers
 //! (`O` accumulators per vector of positions) and streams the input once: per input channel and
 //! tap, one load of consecutive positions from a zero-padded channel plane and `O` fused

@@ -54,3 +54,22 @@ pub fn tiny_model_bytes(seed: u64) -> Vec<u8> {
 pub fn tiny_codec(seed: u64) -> Codec {
     Codec::new(ModelFile::from_bytes(&tiny_model_bytes(seed)).unwrap()).unwrap()
 }
+
+/// A safetensors file split into its JSON header and its data bytes.
+pub fn split_safetensors(bytes: &[u8]) -> (serde_json::Value, &[u8]) {
+    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
+    (serde_json::from_slice(&bytes[8..8 + n]).unwrap(), &bytes[8 + n..])
+}
+
+/// A safetensors file from a JSON header and data bytes (the header padded to 8 bytes with
+/// spaces, as the format allows), e.g. after editing what [`split_safetensors`] returned.
+pub fn join_safetensors(header: &serde_json::Value, data: &[u8]) -> Vec<u8> {
+    let mut text = serde_json::to_vec(header).unwrap();
+    while !text.len().is_multiple_of(8) {
+        text.push(b' ');
+    }
+    let mut out = (text.len() as u64).to_le_bytes().to_vec();
+    out.extend_from_slice(&text);
+    out.extend_from_slice(data);
+    out
+}
