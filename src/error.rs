@@ -31,6 +31,17 @@ pub enum KilnError {
         /// Fingerprint of the model that was given (hex prefix).
         given: String,
     },
+    /// No place searched holds the model a container was written with.
+    #[error(
+        "no model with fingerprint {fingerprint} found; searched: {}\nhint: supply the model file the container was written with, or a folder that holds it",
+        searched.join("; ")
+    )]
+    ModelNotFound {
+        /// The fingerprint the container names (hex prefix).
+        fingerprint: String,
+        /// Every place searched, in order, in words.
+        searched: Vec<String>,
+    },
     /// An input image the codec cannot take as it is.
     #[error("unsupported image: {0}")]
     UnsupportedImage(String),

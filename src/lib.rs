@@ -9,6 +9,7 @@ pub mod allocator;
 pub mod archive;
 pub mod codec;
 pub mod container;
+pub mod decoders;
 pub mod entropy;
 pub mod error;
 pub mod eval;

@@ -96,6 +96,20 @@ pub struct SkippedRow {
     pub error: bool,
 }
 
+/// A model the archive carries in its models folder, as recorded in the catalog.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct ModelRow {
+    /// SHA-256 of the model file (hex, 64 digits); the file is `models/<fingerprint>.safetensors`.
+    pub fingerprint: String,
+    /// Size of the model file in bytes.
+    pub size: u64,
+    /// What the model was called when it was stored: a shipped model's name, or the file name
+    /// it was given as.
+    pub name: String,
+    /// When it was first stored (seconds since the Unix epoch).
+    pub added_at: i64,
+}
+
 const COLUMNS: &str = "rel_path, source_size, source_mtime_ns, pixel_sha256, container_path, container_size, png_size, \
                        width, height, channels, quality, bpp, psnr, ms_ssim, model_fingerprint, packed_at";
 
@@ -113,7 +127,9 @@ impl Catalog {
                model_fingerprint TEXT NOT NULL, packed_at INTEGER NOT NULL);
              CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
              CREATE TABLE IF NOT EXISTS skipped (
-               rel_path TEXT PRIMARY KEY, reason TEXT NOT NULL, is_error INTEGER NOT NULL);",
+               rel_path TEXT PRIMARY KEY, reason TEXT NOT NULL, is_error INTEGER NOT NULL);
+             CREATE TABLE IF NOT EXISTS models (
+               fingerprint TEXT PRIMARY KEY, size INTEGER NOT NULL, name TEXT NOT NULL, added_at INTEGER NOT NULL);",
         )
         .map_err(db(path))?;
         let mut cat = Catalog { conn, path: path.to_path_buf() };
@@ -166,6 +182,36 @@ impl Catalog {
         let rows = st
             .query_map([], |r| {
                 Ok(SkippedRow { rel_path: r.get(0)?, reason: r.get(1)?, error: r.get::<_, i64>(2)? != 0 })
+            })
+            .map_err(db(&self.path))?;
+        rows.collect::<std::result::Result<Vec<_>, _>>().map_err(db(&self.path))
+    }
+
+    /// Records a model the archive carries (a row already there for its fingerprint is kept).
+    pub fn put_model(&self, m: &ModelRow) -> Result<()> {
+        self.conn
+            .execute(
+                "INSERT OR IGNORE INTO models (fingerprint, size, name, added_at) VALUES (?1, ?2, ?3, ?4)",
+                params![m.fingerprint, m.size as i64, m.name, m.added_at],
+            )
+            .map_err(db(&self.path))?;
+        Ok(())
+    }
+
+    /// The models the archive carries, by fingerprint.
+    pub fn models(&self) -> Result<Vec<ModelRow>> {
+        let mut st = self
+            .conn
+            .prepare("SELECT fingerprint, size, name, added_at FROM models ORDER BY fingerprint")
+            .map_err(db(&self.path))?;
+        let rows = st
+            .query_map([], |r| {
+                Ok(ModelRow {
+                    fingerprint: r.get(0)?,
+                    size: r.get::<_, i64>(1)? as u64,
+                    name: r.get(2)?,
+                    added_at: r.get(3)?,
+                })
             })
             .map_err(db(&self.path))?;
         rows.collect::<std::result::Result<Vec<_>, _>>().map_err(db(&self.path))

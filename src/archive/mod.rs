@@ -10,12 +10,17 @@
 //! container heals); a failure of the storage itself (disk full, read-only, no permission)
 //! stops every worker and the run, leaving the catalog consistent for a rerun.
 //!
+//! Every archive carries the models its containers were written with (see [`models`]): `pack`
+//! stores its model in `DEST/models/` before its first container, so deleting the model file
+//! given to `pack` never stops `verify`, `unpack` or `decompress` of the archive.
+//!
 //! Guarantees of [`unpack`]: every path read from the catalog is checked to stay inside the
 //! output folder ([`crate::files::safe_relative`]); each source maps to its own restored name
 //! ([`crate::files::restored_name`]); an existing file is replaced only when asked; damage in
 //! one container is reported by name and the others are still restored.
 
 pub mod catalog;
+pub mod models;
 
 use std::path::{Path, PathBuf};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -27,12 +32,14 @@ use serde::Serialize;
 use sha2::{Digest, Sha256};
 
 use crate::codec::Codec;
+use crate::decoders::Decoders;
 use crate::error::{KilnError, Result};
 use crate::files::{Overwrite, create_parents_within, restored_name, safe_relative, write_output};
 use crate::image_io::{AlphaPolicy, Picture, PngEffort};
 use crate::metrics::{ms_ssim, psnr};
 use crate::model::hex_prefix;
-use catalog::{CATALOG_FILE, Catalog, Entry, SkippedRow, shard_file};
+use crate::model::store::ModelStore;
+use catalog::{CATALOG_FILE, Catalog, Entry, ModelRow, SkippedRow, shard_file};
 
 /// Extension appended to a source file's name for its container.
 pub const CONTAINER_EXTENSION: &str = "kiln";
@@ -107,6 +114,9 @@ pub struct PackOptions {
     pub progress: bool,
     /// Follow symbolic links whose targets lie inside the source (each folder once).
     pub follow_symlinks: bool,
+    /// What the catalog calls the codec's model (a shipped model's name, or the file name it
+    /// was given as).
+    pub model_name: String,
 }
 
 /// What a pack run did.
@@ -369,6 +379,7 @@ pub fn pack(codec: &Codec, o: &PackOptions) -> Result<PackReport> {
     remove_stale_temporaries(&dest)?;
     let mut cat = Catalog::open(&catalog_path(&dest, o.shard))?;
     cat.set_meta("source_root", &src.display().to_string())?;
+    models::carry_model(&dest, &cat, codec.model_file(), &o.model_name, now())?;
     let listing = crate::source_tree::list_source(&src, o.follow_symlinks)?;
     let takes = |rel: &str| o.shard.is_none_or(|s| s.takes(rel));
     let work: Vec<(PathBuf, String, Option<Entry>)> = listing
@@ -470,8 +481,9 @@ pub struct Mismatch {
     pub problem: String,
 }
 
-/// Reads and decodes the container of catalog row `e`, its stored path checked first.
-fn decode_entry(codec: &Codec, dest: &Path, e: &Entry) -> std::result::Result<Picture, String> {
+/// Reads and decodes the container of catalog row `e`, its stored path checked first, with the
+/// model the container names (which must be the one the catalog names).
+fn decode_entry(decoders: &Decoders, dest: &Path, e: &Entry) -> std::result::Result<Picture, String> {
     let crel = safe_relative(&e.container_path).map_err(|err| first_line(&err))?;
     let cpath = dest.join(crel);
     let bytes =
@@ -479,7 +491,46 @@ fn decode_entry(codec: &Codec, dest: &Path, e: &Entry) -> std::result::Result<Pi
     if bytes.len() as u64 != e.container_size {
         return Err(format!("container is {} bytes, catalog says {}", bytes.len(), e.container_size));
     }
-    codec.decode(&bytes).map_err(|err| first_line(&err))
+    let header = crate::container::read_header(&bytes).map_err(|err| first_line(&err))?;
+    let named = hex_prefix(&header.model_fingerprint, 32);
+    if named != e.model_fingerprint {
+        return Err(format!(
+            "container names model {}, the catalog {}",
+            &named[..16],
+            e.model_fingerprint.get(..16).unwrap_or(&e.model_fingerprint)
+        ));
+    }
+    decoders.decode(&bytes).map_err(|err| first_line(&err))
+}
+
+/// How one model used by an archive's containers stands.
+#[derive(Debug, Clone, Serialize)]
+pub struct ModelUse {
+    /// Fingerprint (hex, 64 digits).
+    pub fingerprint: String,
+    /// Catalog rows written with it.
+    pub files: usize,
+    /// Whether the archive records carrying it (`models/<fingerprint>.safetensors`).
+    pub carried: bool,
+    /// Where the decoder found it, or `None` if it was not found.
+    pub found_in: Option<String>,
+}
+
+/// Every model the rows of `entries` use, and where `decoders` finds each.
+fn model_uses(decoders: &Decoders, entries: &[Entry], carried: &[ModelRow]) -> Vec<ModelUse> {
+    let mut counts: std::collections::BTreeMap<&str, usize> = std::collections::BTreeMap::new();
+    for e in entries {
+        *counts.entry(e.model_fingerprint.as_str()).or_default() += 1;
+    }
+    counts
+        .into_iter()
+        .map(|(fp, files)| ModelUse {
+            fingerprint: fp.to_string(),
+            files,
+            carried: carried.iter().any(|m| m.fingerprint == fp),
+            found_in: models::parse_fingerprint(fp).and_then(|f| decoders.codec_for(&f).ok()).map(|(_, place)| place),
+        })
+        .collect()
 }
 
 /// What [`verify`] found.
@@ -491,16 +542,24 @@ pub struct VerifyReport {
     pub problems: Vec<Mismatch>,
     /// Files under the source that the last pack did not archive (`(path, reason, is_error)`).
     pub skipped: Vec<(String, String, bool)>,
+    /// The models the containers use, whether the archive carries each and where it was found.
+    pub models: Vec<ModelUse>,
+    /// Model files met during the lookups that were not what their place promised.
+    pub model_problems: Vec<String>,
 }
 
-/// Decodes every container in the catalog, checks its checksums and, where the source is still
-/// present and unchanged, that the decoded PSNR matches the recorded one (±0.01 dB). Goes on
-/// past every damaged file.
+/// Checks every model the archive carries against its fingerprint, then decodes every
+/// container in the catalog with the model it names, checks its checksums and, where the source
+/// is still present and unchanged, that the decoded PSNR matches the recorded one (±0.01 dB).
+/// Goes on past every damaged file. Models are looked up in `store` with the archive's own
+/// models folder after its explicit model (see [`crate::model::store`]); a damaged or missing
+/// carried model is a problem (named `models/<fingerprint>.safetensors`) even where another
+/// copy decodes the containers.
 ///
 /// # Errors
 /// No catalog, an unreadable catalog, or a catalog without rows beside containers (a lost or
 /// foreign catalog must not read as "all verified").
-pub fn verify(codec: &Codec, dest: &Path) -> Result<VerifyReport> {
+pub fn verify(store: &ModelStore, dest: &Path) -> Result<VerifyReport> {
     let cat = Catalog::open_existing(&dest.join(CATALOG_FILE))?;
     let src_root = cat.meta("source_root")?.map(PathBuf::from);
     let entries = cat.all()?;
@@ -513,11 +572,22 @@ pub fn verify(codec: &Codec, dest: &Path) -> Result<VerifyReport> {
             )));
         }
     }
-    let problems: Vec<Mismatch> = entries
-        .par_iter()
-        .filter_map(|e| {
+    let carried = cat.models()?;
+    let mut problems: Vec<Mismatch> = carried
+        .iter()
+        .filter_map(|m| {
+            models::check_carried(dest, m).map(|problem| Mismatch {
+                rel_path: models::parse_fingerprint(&m.fingerprint)
+                    .map_or_else(|| m.fingerprint.clone(), |fp| models::carried_rel(&fp)),
+                problem,
+            })
+        })
+        .collect();
+    let decoders = Decoders::new(store.with_archive(dest));
+    let models = model_uses(&decoders, &entries, &carried);
+    problems.extend(entries.par_iter().filter_map(|e| {
             let fail = |p: String| Some(Mismatch { rel_path: e.rel_path.clone(), problem: p });
-            let dec = match decode_entry(codec, dest, e) {
+            let dec = match decode_entry(&decoders, dest, e) {
                 Ok(d) => d,
                 Err(why) => return fail(why),
             };
@@ -537,10 +607,10 @@ pub fn verify(codec: &Codec, dest: &Path) -> Result<VerifyReport> {
                 }
             }
             None
-        })
-        .collect();
+        }).collect::<Vec<_>>());
     let skipped = cat.skipped()?.into_iter().map(|r| (r.rel_path, r.reason, r.error)).collect();
-    Ok(VerifyReport { files: entries.len(), problems, skipped })
+    let model_problems = decoders.store().problems();
+    Ok(VerifyReport { files: entries.len(), problems, skipped, models, model_problems })
 }
 
 /// What [`unpack`] did.
@@ -555,12 +625,19 @@ pub struct UnpackReport {
 /// Decodes every container back to PNG under `out` (created if missing), mirroring paths
 /// (names from [`restored_name`]), writing the PNGs with `png` effort. An existing file is
 /// replaced only with [`Overwrite::Replace`]. Goes on past every damaged container or unsafe
-/// row and reports each.
+/// row and reports each. Models are looked up as by [`verify`].
 ///
 /// # Errors
 /// No catalog, or `out` cannot be created.
-pub fn unpack(codec: &Codec, dest: &Path, out: &Path, png: PngEffort, overwrite: Overwrite) -> Result<UnpackReport> {
+pub fn unpack(
+    store: &ModelStore,
+    dest: &Path,
+    out: &Path,
+    png: PngEffort,
+    overwrite: Overwrite,
+) -> Result<UnpackReport> {
     let cat = Catalog::open_existing(&dest.join(CATALOG_FILE))?;
+    let decoders = Decoders::new(store.with_archive(dest));
     let entries = cat.all()?;
     std::fs::create_dir_all(out).map_err(|e| KilnError::io(out, e))?;
     // One restored name per row: a second row that maps to a name already taken is refused.
@@ -584,7 +661,7 @@ pub fn unpack(codec: &Codec, dest: &Path, out: &Path, png: PngEffort, overwrite:
         .par_iter()
         .map(|(e, rel)| {
             let fail = |problem: String| Mismatch { rel_path: e.rel_path.clone(), problem };
-            let pic = decode_entry(codec, dest, e).map_err(fail)?;
+            let pic = decode_entry(&decoders, dest, e).map_err(fail)?;
             let bytes = pic.to_png_with(png).map_err(|err| fail(first_line(&err)))?;
             create_parents_within(out, rel).map_err(|err| fail(first_line(&err)))?;
             write_output(&out.join(rel), &bytes, overwrite, &[]).map_err(|err| fail(first_line(&err)))
@@ -652,8 +729,9 @@ pub fn stats(dest: &Path) -> Result<Stats> {
     })
 }
 
-/// Unites every shard catalog in `dest` into `catalog.sqlite`; returns the number of rows and
-/// the rows refused because a stored path could lead outside the archive.
+/// Unites every shard catalog in `dest` into `catalog.sqlite`, their models included; returns
+/// the number of rows and the problems: rows refused because a stored path could lead outside
+/// the archive, and carried models missing or damaged in `models/` (named by their path).
 pub fn merge_catalogs(dest: &Path) -> Result<(usize, Vec<Mismatch>)> {
     let mut shards: Vec<PathBuf> = std::fs::read_dir(dest)
         .map_err(|e| KilnError::io(dest, e))?
@@ -687,7 +765,17 @@ pub fn merge_catalogs(dest: &Path) -> Result<(usize, Vec<Mismatch>)> {
             }
         }
         skipped.extend(c.skipped()?);
+        for m in c.models()? {
+            merged.put_model(&m)?;
+        }
     }
     merged.set_skipped(&skipped)?;
+    for m in merged.models()? {
+        if let Some(problem) = models::check_carried(dest, &m) {
+            let rel_path = models::parse_fingerprint(&m.fingerprint)
+                .map_or_else(|| m.fingerprint.clone(), |fp| models::carried_rel(&fp));
+            refused.push(Mismatch { rel_path, problem });
+        }
+    }
     Ok((merged.all()?.len(), refused))
 }

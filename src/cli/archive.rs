@@ -1,6 +1,6 @@
 //! `kiln pack`, `verify`, `unpack`, `stats` and `catalog merge`.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use clap::{Args, Subcommand};
 use kiln::archive::{self, PackOptions, Shard, Target};
@@ -24,7 +24,8 @@ pub struct PackArgs {
     /// Per image, the highest quality whose container is at most this many bits per pixel.
     #[arg(long)]
     target_bpp: Option<f64>,
-    /// Model file (default: the embedded model).
+    /// Model: a shipped model's name (`kiln models`) or a model file (default: the newest
+    /// shipped model). It is stored in DEST/models/ before the first container.
     #[arg(long)]
     model: Option<PathBuf>,
     #[command(flatten)]
@@ -45,9 +46,12 @@ pub struct PackArgs {
 pub struct ArchiveArgs {
     /// Archive folder.
     dest: PathBuf,
-    /// Model file (default: the embedded model).
+    /// A model to try first for the containers that name it; the others are found by
+    /// fingerprint in DEST/models/, --models folders and the shipped models.
     #[arg(long)]
     model: Option<PathBuf>,
+    #[command(flatten)]
+    lookup: super::models::LookupArgs,
 }
 
 #[derive(Debug, Subcommand)]
@@ -59,8 +63,40 @@ pub enum CatalogCommand {
     },
 }
 
-fn codec(model: Option<&std::path::Path>) -> anyhow::Result<Codec> {
+fn codec(model: Option<&Path>) -> anyhow::Result<Codec> {
     Ok(Codec::new(ModelFile::load(model)?)?)
+}
+
+/// The catalog's name for the model `spec` loaded as `file`: its shipped name, or the file name.
+fn model_name(spec: Option<&Path>, file: &ModelFile) -> String {
+    match (file.shipped(), spec) {
+        (Some(m), _) => m.name.to_string(),
+        (None, Some(p)) => kiln::files::display_name(p.file_name().map_or(p, Path::new)),
+        (None, None) => "unnamed".to_string(),
+    }
+}
+
+/// Prints how the models of an archive stand; returns how many were not found.
+fn report_models(uses: &[archive::ModelUse], problems: &[String]) -> usize {
+    for p in problems {
+        eprintln!("  model file: {p}");
+    }
+    let mut missing = 0;
+    for u in uses {
+        let fp = &u.fingerprint[..u.fingerprint.len().min(16)];
+        match &u.found_in {
+            None => {
+                missing += 1;
+                eprintln!("  model {fp}: not found ({} file(s) need it)", u.files);
+            }
+            Some(place) if !u.carried => eprintln!(
+                "note: the archive does not carry model {fp} ({} file(s)); found in {place}\nhint: run `kiln pack` again with that model to store it in the archive",
+                u.files
+            ),
+            Some(_) => {}
+        }
+    }
+    missing
 }
 
 pub fn pack(a: PackArgs) -> anyhow::Result<()> {
@@ -91,6 +127,7 @@ pub fn pack(a: PackArgs) -> anyhow::Result<()> {
         shard,
         progress: true,
         follow_symlinks: a.follow_symlinks,
+        model_name: model_name(a.model.as_deref(), codec.model_file()),
     };
     let r = archive::pack(&codec, &o)?;
     for (f, why, error) in &r.skipped {
@@ -119,7 +156,8 @@ pub fn pack(a: PackArgs) -> anyhow::Result<()> {
 }
 
 pub fn verify(a: ArchiveArgs) -> anyhow::Result<()> {
-    let r = archive::verify(&codec(a.model.as_deref())?, &a.dest)?;
+    let r = archive::verify(&a.lookup.store(a.model.as_deref())?, &a.dest)?;
+    let missing = report_models(&r.models, &r.model_problems);
     for p in &r.problems {
         eprintln!("  mismatch: {}: {}", p.rel_path, p.problem);
     }
@@ -129,15 +167,24 @@ pub fn verify(a: ArchiveArgs) -> anyhow::Result<()> {
             "note: {not_archived} file(s) under the source were not archived by the last pack (`kiln stats` counts them; the pack run listed them)"
         );
     }
+    if missing > 0 {
+        let store = a.lookup.store(a.model.as_deref())?.with_archive(&a.dest);
+        eprintln!("searched: {}", store.places().join("; "));
+        eprintln!(
+            "hint: pass the model file (--model FILE) or a folder that holds it (--models DIR, or {})",
+            super::models::MODELS_ENV
+        );
+    }
     if !r.problems.is_empty() {
-        anyhow::bail!("{} of {} file(s) failed verification (listed above)", r.problems.len(), r.files);
+        anyhow::bail!("{} problem(s) in an archive of {} file(s) (listed above)", r.problems.len(), r.files);
     }
     eprintln!("verified {} file(s): all containers decode and match the catalog", r.files);
     Ok(())
 }
 
 pub fn unpack(a: ArchiveArgs, out: PathBuf, png: kiln::PngEffort, force: bool) -> anyhow::Result<()> {
-    let r = archive::unpack(&codec(a.model.as_deref())?, &a.dest, &out, png, Overwrite::from_force(force))?;
+    let store = a.lookup.store(a.model.as_deref())?;
+    let r = archive::unpack(&store, &a.dest, &out, png, Overwrite::from_force(force))?;
     for p in &r.problems {
         eprintln!("  not restored: {}: {}", p.rel_path, p.problem);
     }

@@ -6,7 +6,9 @@ use std::path::{Path, PathBuf};
 use anyhow::Context;
 use clap::Args;
 use kiln::files::{Overwrite, restored_os_name, write_output};
+use kiln::decoders::Decoders;
 use kiln::image_io::read_regular;
+use kiln::model::hex_prefix;
 use kiln::{AlphaPolicy, Codec, ModelFile, Picture, PngEffort};
 
 use super::refine_args::RefineArgs;
@@ -24,7 +26,8 @@ pub struct CompressArgs {
     /// Quality from 1 (smallest file) to 100 (best fidelity); fractions allowed.
     #[arg(short, long, default_value_t = 75.0)]
     quality: f32,
-    /// Model file (default: the embedded model).
+    /// Model: a shipped model's name (`kiln models`) or a model file (default: the newest
+    /// shipped model). A container decodes only with the exact model that wrote it.
     #[arg(long)]
     model: Option<PathBuf>,
     /// Print a JSON object with sizes and bit counts on stdout.
@@ -48,9 +51,12 @@ pub struct DecompressArgs {
     /// Replace the output if it exists (never the input, never a non-regular file).
     #[arg(long)]
     force: bool,
-    /// Model file the container was written with (default: the embedded model).
+    /// Model the container was written with, if it is none of those found by fingerprint (the
+    /// models folder of an archive the container lies in, --models folders, the shipped models).
     #[arg(long)]
     model: Option<PathBuf>,
+    #[command(flatten)]
+    lookup: super::models::LookupArgs,
     /// PNG writer effort: `fast`, or `smallest` (several times slower, files about a quarter smaller).
     #[arg(long, value_enum, default_value = "fast")]
     png: PngEffort,
@@ -107,6 +113,14 @@ pub fn compress(a: CompressArgs) -> anyhow::Result<()> {
     let alpha = if a.drop_alpha { AlphaPolicy::Drop } else { AlphaPolicy::Refuse };
     let pic = Picture::open(&a.input, alpha)?;
     let codec = a.refine.apply(Codec::new(ModelFile::load(a.model.as_deref())?)?)?;
+    let file = codec.model_file();
+    if let Some(m) = a.model.as_deref().filter(|_| file.shipped().is_none()) {
+        eprintln!(
+            "warning: {} is not a shipped model: this container decodes only with that exact file (fingerprint {}); keep it beside the container, or `kiln pack` into an archive, which stores its models",
+            m.display(),
+            hex_prefix(&file.fingerprint, 8)
+        );
+    }
     let enc = codec.encode(&pic, a.quality)?;
     sink.write(&enc.bytes, a.force, &a.input)?;
     if a.stats {
@@ -122,7 +136,20 @@ pub fn decompress(a: DecompressArgs) -> anyhow::Result<()> {
     });
     sink.check(a.force, &a.input)?;
     let bytes = read_regular(&a.input)?;
-    let codec = Codec::new(ModelFile::load(a.model.as_deref())?)?;
+    let header = kiln::container::read_header(&bytes).with_context(|| format!("{}", a.input.display()))?;
+    let store = super::models::with_enclosing_archives(a.lookup.store(a.model.as_deref())?, &a.input);
+    let decoders = Decoders::new(store);
+    let (codec, place) = decoders
+        .codec_for(&header.model_fingerprint)
+        .map_err(super::models::explain)
+        .with_context(|| format!("{}", a.input.display()))?;
+    if let Some(m) = a.model.as_deref().filter(|m| place != format!("--model {}", m.display())) {
+        eprintln!(
+            "note: --model {} is not the model this container names ({}); decoded with {place}",
+            m.display(),
+            hex_prefix(&header.model_fingerprint, 8)
+        );
+    }
     let pic = codec.decode(&bytes).with_context(|| format!("{}", a.input.display()))?;
     sink.write(&pic.to_png_with(a.png)?, a.force, &a.input)?;
     Ok(())

@@ -16,10 +16,11 @@ pub struct EvaluateArgs {
     /// Report folder (created if missing).
     #[arg(long)]
     out: PathBuf,
-    /// Model file (default: the embedded model).
+    /// Model: a shipped model's name or a model file (default: the newest shipped model).
     #[arg(long)]
     model: Option<PathBuf>,
-    /// A second model to compare against (e.g. `default` when --model is a fine-tuned one).
+    /// A second model to compare against (e.g. `default` or a shipped model's name when
+    /// --model is a fine-tuned one).
     #[arg(long)]
     reference_model: Option<PathBuf>,
     /// Kiln qualities, comma-separated.

@@ -2,15 +2,20 @@
 
 use std::path::Path;
 
-use kiln::model::{DEFAULT_MODEL_BYTES, ModelFile, hex_prefix};
+use kiln::model::{ModelFile, ShippedModel, hex_prefix};
 use kiln::{KilnError, container};
 use serde_json::json;
 
-pub fn inspect(file: &Path, as_json: bool) -> anyhow::Result<()> {
-    let bytes =
-        if file.as_os_str() == "default" { DEFAULT_MODEL_BYTES.to_vec() } else { kiln::image_io::read_regular(file)? };
+use super::models::LookupArgs;
+
+pub fn inspect(file: &Path, as_json: bool, lookup: &LookupArgs) -> anyhow::Result<()> {
+    let bytes = match file.to_str().and_then(ShippedModel::by_name) {
+        Some(m) => m.bytes()?.into_owned(),
+        None => kiln::image_io::read_regular(file)?,
+    };
     let value = if bytes.starts_with(&container::MAGIC) {
-        container_json(&bytes)?
+        let store = super::models::with_enclosing_archives(lookup.store(None)?, file);
+        container_json(&bytes, &store)?
     } else if let Ok(format) = image::guess_format(&bytes) {
         anyhow::bail!(
             "{} is a {format:?} image, not a Kiln container or model file\nhint: `kiln compress` makes a container from it",
@@ -33,8 +38,15 @@ pub fn inspect(file: &Path, as_json: bool) -> anyhow::Result<()> {
     Ok(())
 }
 
-fn container_json(bytes: &[u8]) -> anyhow::Result<serde_json::Value> {
+fn container_json(bytes: &[u8], store: &kiln::model::store::ModelStore) -> anyhow::Result<serde_json::Value> {
     let h = container::read_header(bytes)?;
+    let model = match store.find(&h.model_fingerprint) {
+        Ok(found) => json!({
+            "shipped_name": found.file.shipped().map(|m| m.name),
+            "found_in": found.place,
+        }),
+        Err(e) => json!({"found_in": null, "not_found": e.to_string().lines().next().unwrap_or("")}),
+    };
     let tiles: Vec<_> = h
         .tiles
         .iter()
@@ -48,6 +60,7 @@ fn container_json(bytes: &[u8]) -> anyhow::Result<serde_json::Value> {
         "bpp": bytes.len() as f64 * 8.0 / (h.width as f64 * h.height as f64),
         "quality": h.quality,
         "model_fingerprint": hex_prefix(&h.model_fingerprint, 32),
+        "model": model,
         "tile_size": [h.tile_width, h.tile_height],
         "tiles": tiles,
     }))
@@ -64,6 +77,7 @@ fn model_json(bytes: &[u8]) -> anyhow::Result<serde_json::Value> {
         "kind": "model",
         "bytes": f.size,
         "fingerprint": hex_prefix(&f.fingerprint, 32),
+        "shipped_name": f.shipped().map(|m| m.name),
         "config": c,
         "latent_stride": c.latent_stride(),
         "anchors": anchors,

@@ -4,6 +4,7 @@ mod archive;
 mod compress;
 mod evaluate;
 mod inspect;
+mod models;
 mod refine_args;
 mod train;
 
@@ -25,11 +26,21 @@ enum Command {
     Compress(compress::CompressArgs),
     /// Decompress a .kiln container to PNG.
     Decompress(compress::DecompressArgs),
-    /// Describe a container or a model file (`default` for the embedded model).
+    /// Describe a container or a model (a file, `default`, or a shipped model's name).
     Inspect {
-        /// A .kiln container, a model file, or `default`.
+        /// A .kiln container, a model file, `default`, or a shipped model's name.
         file: PathBuf,
         /// Print JSON instead of text.
+        #[arg(long)]
+        json: bool,
+        #[command(flatten)]
+        lookup: models::LookupArgs,
+    },
+    /// List the shipped models (name, fingerprint, date, figures) and those in model folders.
+    Models {
+        #[command(flatten)]
+        lookup: models::LookupArgs,
+        /// Print JSON.
         #[arg(long)]
         json: bool,
     },
@@ -72,7 +83,8 @@ pub fn run(cli: Cli) -> anyhow::Result<()> {
     match cli.command {
         Command::Compress(a) => compress::compress(a),
         Command::Decompress(a) => compress::decompress(a),
-        Command::Inspect { file, json } => inspect::inspect(&file, json),
+        Command::Inspect { file, json, lookup } => inspect::inspect(&file, json, &lookup),
+        Command::Models { lookup, json } => models::list(lookup, json),
         Command::Evaluate(a) => evaluate::evaluate(a),
         Command::Pack(a) => archive::pack(a),
         Command::Verify(a) => archive::verify(a),

@@ -14,7 +14,7 @@ pub struct TrainArgs {
     /// Where to write the exported model.
     #[arg(long)]
     out: PathBuf,
-    /// Fine-tune from this model file, or `default` for the embedded model.
+    /// Fine-tune from this model: a model file, `default`, or a shipped model's name.
     #[arg(long)]
     init: Option<PathBuf>,
     /// Configuration of a new model: `default`, `tiny`, or a JSON file.

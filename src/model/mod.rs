@@ -13,6 +13,8 @@ pub mod gain;
 pub mod gdn;
 pub mod init;
 pub mod layers;
+pub mod shipped;
+pub mod store;
 pub mod synthesis;
 
 use std::collections::HashMap;
@@ -36,8 +38,7 @@ use synthesis::{HyperSynthesis, Synthesis};
 /// Format tag stored in every model file's metadata.
 pub const MODEL_FORMAT: &str = "kiln-model-1";
 
-/// The shipped default model, embedded in the binary.
-pub static DEFAULT_MODEL_BYTES: &[u8] = include_bytes!("default.safetensors");
+pub use shipped::{DEFAULT_MODEL_BYTES, ShippedModel};
 
 /// The network: transforms, gains and hyper-latent density, with their variables.
 #[derive(Clone)]
@@ -344,6 +345,8 @@ pub struct ModelFile {
     pub fingerprint: [u8; 32],
     /// Size of the file in bytes.
     pub size: usize,
+    /// The file's bytes, exactly as fingerprinted (what an archive stores beside its containers).
+    bytes: std::sync::Arc<[u8]>,
 }
 
 /// SHA-256 of model-file bytes.
@@ -396,36 +399,65 @@ impl ModelFile {
         if tables.hyper.len() != model.config.nz {
             return Err(KilnError::BadModel("hyper tables do not match the hyper-latent channels".into()));
         }
-        Ok(ModelFile { model, tables, training, fingerprint: fingerprint(bytes), size: bytes.len() })
+        Ok(ModelFile {
+            model,
+            tables,
+            training,
+            fingerprint: fingerprint(bytes),
+            size: bytes.len(),
+            bytes: bytes.into(),
+        })
     }
 
-    /// Reads `path`, or the embedded default for `None` or the word `default`.
+    /// The model file's bytes, exactly those the fingerprint is the SHA-256 of.
+    pub fn bytes(&self) -> &[u8] {
+        &self.bytes
+    }
+
+    /// The shipped model this file is, if it is one (by fingerprint, whatever its file name).
+    pub fn shipped(&self) -> Option<&'static ShippedModel> {
+        ShippedModel::by_fingerprint(&self.fingerprint)
+    }
+
+    /// Reads the model `spec` names: `None` or `default` is the newest shipped model (embedded);
+    /// the name of a shipped model ([`shipped::SHIPPED`]) is that model; anything else is a path
+    /// (write `./NAME` for a file that has a shipped model's name).
     ///
     /// # Errors
     /// I/O errors naming the path (special files are refused, not read); [`KilnError::BadModel`]
-    /// for a file over [`MODEL_FILE_MAX_BYTES`] or one [`ModelFile::from_bytes`] refuses.
-    pub fn load(path: Option<&std::path::Path>) -> Result<Self> {
-        match path {
-            None => Self::from_bytes(DEFAULT_MODEL_BYTES),
-            Some(p) if p.as_os_str() == "default" => Self::from_bytes(DEFAULT_MODEL_BYTES),
-            Some(p) => {
-                let len = std::fs::metadata(p).map_err(|e| KilnError::io(p, e))?.len();
-                if len > MODEL_FILE_MAX_BYTES {
-                    return Err(KilnError::BadModel(format!(
-                        "{} is {len} bytes; model files above {MODEL_FILE_MAX_BYTES} bytes are not supported",
-                        p.display()
-                    )));
-                }
-                let bytes = crate::image_io::read_regular(p).map_err(|e| match e {
-                    KilnError::UnsupportedImage(m) => KilnError::BadModel(m),
-                    other => other,
-                })?;
-                Self::from_bytes(&bytes).map_err(|e| match e {
-                    KilnError::BadModel(m) => KilnError::BadModel(format!("{}: {m}", p.display())),
-                    other => other,
-                })
-            }
+    /// for a file over [`MODEL_FILE_MAX_BYTES`], one [`ModelFile::from_bytes`] refuses, or a
+    /// shipped model whose bytes this installation lacks.
+    pub fn load(spec: Option<&std::path::Path>) -> Result<Self> {
+        let path = match spec {
+            None => return Self::from_bytes(&ShippedModel::newest().bytes()?),
+            Some(p) => p,
+        };
+        if let Some(m) = path.to_str().and_then(ShippedModel::by_name) {
+            return Self::from_bytes(&m.bytes()?);
         }
+        Self::read(path)
+    }
+
+    /// Reads the model file at `path` (no shipped names).
+    ///
+    /// # Errors
+    /// As [`ModelFile::load`].
+    pub fn read(path: &std::path::Path) -> Result<Self> {
+        let len = std::fs::metadata(path).map_err(|e| KilnError::io(path, e))?.len();
+        if len > MODEL_FILE_MAX_BYTES {
+            return Err(KilnError::BadModel(format!(
+                "{} is {len} bytes; model files above {MODEL_FILE_MAX_BYTES} bytes are not supported",
+                path.display()
+            )));
+        }
+        let bytes = crate::image_io::read_regular(path).map_err(|e| match e {
+            KilnError::UnsupportedImage(m) => KilnError::BadModel(m),
+            other => other,
+        })?;
+        Self::from_bytes(&bytes).map_err(|e| match e {
+            KilnError::BadModel(m) => KilnError::BadModel(format!("{}: {m}", path.display())),
+            other => other,
+        })
     }
 }
 
