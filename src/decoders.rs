@@ -11,11 +11,14 @@ use crate::image_io::Picture;
 use crate::model::ModelFile;
 use crate::model::store::{Found, ModelStore};
 
+/// A codec and where its model was found.
+type Placed = (Arc<Codec>, String);
+
 /// Codecs for whatever models the containers it is given name.
 #[derive(Debug)]
 pub struct Decoders {
     store: ModelStore,
-    codecs: Mutex<HashMap<[u8; 32], (Arc<Codec>, String)>>,
+    codecs: Mutex<HashMap<[u8; 32], Placed>>,
 }
 
 impl Decoders {
@@ -33,7 +36,7 @@ impl Decoders {
     ///
     /// # Errors
     /// [`crate::KilnError::ModelNotFound`] when no place holds it.
-    pub fn codec_for(&self, fp: &[u8; 32]) -> Result<(Arc<Codec>, String)> {
+    pub fn codec_for(&self, fp: &[u8; 32]) -> Result<Placed> {
         let mut codecs = self.codecs.lock().unwrap_or_else(|e| e.into_inner());
         if let Some(c) = codecs.get(fp) {
             return Ok(c.clone());

@@ -124,7 +124,7 @@ fn bad_inputs_exit_1_with_a_one_line_error_and_no_partial_file() {
                 "--model".into(),
                 other.display().to_string(),
             ],
-            "model mismatch",
+            "no model with fingerprint",
         ),
         (vec!["compress".into(), img.clone(), "-o".into(), p("o8.kiln"), "--model".into(), p("text.png")], "bad model"),
         (

@@ -449,19 +449,34 @@ fn a_storage_that_refuses_writes_stops_pack_at_once_and_a_rerun_resumes() {
     let size = std::fs::metadata(&probe).unwrap().len();
     assert!(size > LIMIT, "the container ({size} bytes) would fit under the limit: the test needs larger images");
     let dest = tmp.path().join("archive");
-    let mut cmd = Command::new(env!("CARGO_BIN_EXE_kiln"));
-    cmd.args(["pack", &s(&src), &s(&dest), "--quality", "100", "--jobs", "1"]);
-    // SAFETY: only async-signal-safe calls between fork and exec.
-    unsafe {
-        cmd.pre_exec(|| {
-            libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
-            let lim = libc::rlimit { rlim_cur: LIMIT, rlim_max: LIMIT };
-            if libc::setrlimit(libc::RLIMIT_FSIZE, &lim) != 0 {
-                return Err(std::io::Error::last_os_error());
-            }
-            Ok(())
-        });
-    }
+    let limited = || {
+        let mut cmd = Command::new(env!("CARGO_BIN_EXE_kiln"));
+        cmd.args(["pack", &s(&src), &s(&dest), "--quality", "100", "--jobs", "1"]);
+        // SAFETY: only async-signal-safe calls between fork and exec.
+        unsafe {
+            cmd.pre_exec(|| {
+                libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
+                let lim = libc::rlimit { rlim_cur: LIMIT, rlim_max: LIMIT };
+                if libc::setrlimit(libc::RLIMIT_FSIZE, &lim) != 0 {
+                    return Err(std::io::Error::last_os_error());
+                }
+                Ok(())
+            });
+        }
+        cmd
+    };
+    // The model (several MB) is stored before any container: that write fails first, and no
+    // container is written without the model that decodes it.
+    let o = limited().output().unwrap();
+    assert_eq!(o.status.code(), Some(1), "{}", err(&o));
+    assert!(err(&o).contains("models/") && err(&o).to_lowercase().contains("too large"), "{}", err(&o));
+    assert!(!std::fs::read_dir(&dest).unwrap().flatten().any(|e| e.path().extension().is_some_and(|x| x == "kiln")));
+    // With the model in place (as an earlier run on a roomier disk would leave it), the
+    // containers are what hits the limit.
+    let fp = kiln::model::fingerprint(kiln::model::DEFAULT_MODEL_BYTES);
+    std::fs::write(dest.join("models").join(kiln::model::store::stored_name(&fp)), kiln::model::DEFAULT_MODEL_BYTES)
+        .unwrap();
+    let mut cmd = limited();
     let t0 = Instant::now();
     let o = cmd.output().unwrap();
     let elapsed = t0.elapsed();

@@ -202,9 +202,13 @@ fn an_archive_outlives_the_model_file_it_was_packed_with() {
     let stored = dest.join("models").join(stored_name(&fp));
     assert_eq!(std::fs::read(&stored).unwrap(), std::fs::read(&t.model_a).unwrap());
     let cat = rusqlite::Connection::open(dest.join("catalog.sqlite")).unwrap();
-    let (row_fp, name, size): (String, String, i64) =
-        cat.query_row("SELECT fingerprint, name, size FROM models", [], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?))).unwrap();
-    assert_eq!((row_fp, name, size as usize), (hex_prefix(&fp, 32), "tuned-a.safetensors".into(), std::fs::read(&t.model_a).unwrap().len()));
+    let (row_fp, name, size): (String, String, i64) = cat
+        .query_row("SELECT fingerprint, name, size FROM models", [], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)))
+        .unwrap();
+    assert_eq!(
+        (row_fp, name, size as usize),
+        (hex_prefix(&fp, 32), "tuned-a.safetensors".into(), std::fs::read(&t.model_a).unwrap().len())
+    );
     drop(cat);
 
     let before = t.path("before");

@@ -585,29 +585,34 @@ pub fn verify(store: &ModelStore, dest: &Path) -> Result<VerifyReport> {
         .collect();
     let decoders = Decoders::new(store.with_archive(dest));
     let models = model_uses(&decoders, &entries, &carried);
-    problems.extend(entries.par_iter().filter_map(|e| {
-            let fail = |p: String| Some(Mismatch { rel_path: e.rel_path.clone(), problem: p });
-            let dec = match decode_entry(&decoders, dest, e) {
-                Ok(d) => d,
-                Err(why) => return fail(why),
-            };
-            let source = src_root.as_ref().zip(safe_relative(&e.rel_path).ok()).map(|(r, rel)| r.join(rel));
-            if let Some(sp) = source.filter(|p| p.is_file()) {
-                match Picture::open(&sp, AlphaPolicy::Refuse) {
-                    Ok(pic) if pixel_hash(&pic) != e.pixel_sha256 => {
-                        return fail("source pixels changed since packing".into());
-                    }
-                    Ok(pic) => {
-                        let p = psnr(&pic.data, &dec.data);
-                        if (p - e.psnr).abs() > 0.01 && !(p.is_infinite() && e.psnr.is_infinite()) {
-                            return fail(format!("decoded PSNR {p:.3} dB, catalog says {:.3} dB", e.psnr));
+    problems.extend(
+        entries
+            .par_iter()
+            .filter_map(|e| {
+                let fail = |p: String| Some(Mismatch { rel_path: e.rel_path.clone(), problem: p });
+                let dec = match decode_entry(&decoders, dest, e) {
+                    Ok(d) => d,
+                    Err(why) => return fail(why),
+                };
+                let source = src_root.as_ref().zip(safe_relative(&e.rel_path).ok()).map(|(r, rel)| r.join(rel));
+                if let Some(sp) = source.filter(|p| p.is_file()) {
+                    match Picture::open(&sp, AlphaPolicy::Refuse) {
+                        Ok(pic) if pixel_hash(&pic) != e.pixel_sha256 => {
+                            return fail("source pixels changed since packing".into());
                         }
+                        Ok(pic) => {
+                            let p = psnr(&pic.data, &dec.data);
+                            if (p - e.psnr).abs() > 0.01 && !(p.is_infinite() && e.psnr.is_infinite()) {
+                                return fail(format!("decoded PSNR {p:.3} dB, catalog says {:.3} dB", e.psnr));
+                            }
+                        }
+                        Err(err) => return fail(format!("source unreadable: {}", first_line(&err))),
                     }
-                    Err(err) => return fail(format!("source unreadable: {}", first_line(&err))),
                 }
-            }
-            None
-        }).collect::<Vec<_>>());
+                None
+            })
+            .collect::<Vec<_>>(),
+    );
     let skipped = cat.skipped()?.into_iter().map(|r| (r.rel_path, r.reason, r.error)).collect();
     let model_problems = decoders.store().problems();
     Ok(VerifyReport { files: entries.len(), problems, skipped, models, model_problems })

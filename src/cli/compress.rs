@@ -5,8 +5,8 @@ use std::path::{Path, PathBuf};
 
 use anyhow::Context;
 use clap::Args;
-use kiln::files::{Overwrite, restored_os_name, write_output};
 use kiln::decoders::Decoders;
+use kiln::files::{Overwrite, restored_os_name, write_output};
 use kiln::image_io::read_regular;
 use kiln::model::hex_prefix;
 use kiln::{AlphaPolicy, Codec, ModelFile, Picture, PngEffort};

@@ -128,10 +128,9 @@ impl ModelStore {
         if let Some(f) = cache.found.get(fp) {
             return Ok(f.clone());
         }
-        let found = self.search(fp, &mut cache).ok_or_else(|| KilnError::ModelNotFound {
-            fingerprint: hex_prefix(fp, 8),
-            searched: self.places(),
-        })?;
+        let found = self
+            .search(fp, &mut cache)
+            .ok_or_else(|| KilnError::ModelNotFound { fingerprint: hex_prefix(fp, 8), searched: self.places() })?;
         cache.found.insert(*fp, found.clone());
         Ok(found)
     }
@@ -207,10 +206,7 @@ fn index_folder(dir: &Path) -> Vec<(PathBuf, [u8; 32])> {
         .filter(|p| p.extension().is_some_and(|x| x == MODEL_EXTENSION))
         .collect();
     paths.sort();
-    paths
-        .into_iter()
-        .filter_map(|p| crate::image_io::read_regular(&p).ok().map(|b| (p, fingerprint(&b))))
-        .collect()
+    paths.into_iter().filter_map(|p| crate::image_io::read_regular(&p).ok().map(|b| (p, fingerprint(&b)))).collect()
 }
 
 fn first_line(e: &KilnError) -> String {
