@@ -500,7 +500,11 @@ fn decode_entry(decoders: &Decoders, dest: &Path, e: &Entry) -> std::result::Res
             e.model_fingerprint.get(..16).unwrap_or(&e.model_fingerprint)
         ));
     }
-    decoders.decode(&bytes).map_err(|err| first_line(&err))
+    decoders.decode(&bytes).map_err(|err| match err {
+        // The places searched are listed once per model (`VerifyReport::models`), not per file.
+        KilnError::ModelNotFound { fingerprint, .. } => format!("model {fingerprint} not found"),
+        other => first_line(&other),
+    })
 }
 
 /// How one model used by an archive's containers stands.

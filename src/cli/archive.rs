@@ -76,6 +76,17 @@ fn model_name(spec: Option<&Path>, file: &ModelFile) -> String {
     }
 }
 
+/// Prints where models were looked up for the archive, and what would find a missing one.
+fn print_search(a: &ArchiveArgs) -> anyhow::Result<()> {
+    let store = a.lookup.store(a.model.as_deref())?.with_archive(&a.dest);
+    eprintln!("models searched: {}", store.places().join("; "));
+    eprintln!(
+        "hint: pass the model file (--model FILE) or a folder that holds it (--models DIR, or {})",
+        super::models::MODELS_ENV
+    );
+    Ok(())
+}
+
 /// Prints how the models of an archive stand; returns how many were not found.
 fn report_models(uses: &[archive::ModelUse], problems: &[String]) -> usize {
     for p in problems {
@@ -168,12 +179,7 @@ pub fn verify(a: ArchiveArgs) -> anyhow::Result<()> {
         );
     }
     if missing > 0 {
-        let store = a.lookup.store(a.model.as_deref())?.with_archive(&a.dest);
-        eprintln!("searched: {}", store.places().join("; "));
-        eprintln!(
-            "hint: pass the model file (--model FILE) or a folder that holds it (--models DIR, or {})",
-            super::models::MODELS_ENV
-        );
+        print_search(&a)?;
     }
     if !r.problems.is_empty() {
         anyhow::bail!("{} problem(s) in an archive of {} file(s) (listed above)", r.problems.len(), r.files);
@@ -187,6 +193,9 @@ pub fn unpack(a: ArchiveArgs, out: PathBuf, png: kiln::PngEffort, force: bool) -
     let r = archive::unpack(&store, &a.dest, &out, png, Overwrite::from_force(force))?;
     for p in &r.problems {
         eprintln!("  not restored: {}: {}", p.rel_path, p.problem);
+    }
+    if r.problems.iter().any(|p| p.problem.starts_with("model ") && p.problem.ends_with(" not found")) {
+        print_search(&a)?;
     }
     eprintln!("unpacked {} file(s) to {}", r.restored, out.display());
     if !r.problems.is_empty() {
