@@ -232,7 +232,7 @@ pub fn catalog(c: CatalogCommand) -> anyhow::Result<()> {
             }
             eprintln!("merged catalog has {n} file(s): {}", dest.join(archive::catalog::CATALOG_FILE).display());
             if !refused.is_empty() {
-                anyhow::bail!("{} row(s) of the shard catalogs were refused (listed above)", refused.len());
+                anyhow::bail!("{} problem(s) in the shard catalogs or their models (listed above)", refused.len());
             }
             Ok(())
         }
