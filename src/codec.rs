@@ -19,17 +19,26 @@ use crate::entropy::coder::{SymbolDecoder, SymbolEncoder, TableSet};
 use crate::entropy::gaussian::{SCALE_MAX, SCALE_MIN, scale_index};
 use crate::error::{KilnError, Result};
 use crate::image_io::Picture;
-use crate::kernels::{HyperSynthesisFixed, PriorParameters, SimdMode};
+use crate::kernels::{HyperSynthesisFixed, IntPath, IntSynthesis, PriorParameters, SimdMode};
 use crate::model::config::check_quality;
 use crate::model::gain::GainVectors;
 use crate::model::{Model, ModelFile, hex_prefix};
 use crate::refine::{RefineConfig, RefineTarget, refine};
+
+/// Which synthesis a decode runs.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Synthesis {
+    Integer,
+    Float,
+}
 
 /// A model ready to code: its network, fixed-order hyper-synthesis and coding tables.
 #[derive(Debug)]
 pub struct Codec {
     file: ModelFile,
     hyper_fixed: HyperSynthesisFixed,
+    synthesis: IntSynthesis,
+    int_path: IntPath,
     gaussian: TableSet,
     hyper: TableSet,
     simd: SimdMode,
@@ -183,11 +192,14 @@ impl Codec {
     /// Prepares a model for coding (builds the coding models from its integer tables).
     pub fn new(file: ModelFile) -> Result<Self> {
         let hyper_fixed = file.model.hyper_synthesis_fixed()?;
+        let synthesis = file.model.synthesis_integer()?;
         let gaussian = TableSet::new(file.tables.gaussian.clone())?;
         let hyper = TableSet::new(file.tables.hyper.clone())?;
         Ok(Codec {
             file,
             hyper_fixed,
+            synthesis,
+            int_path: IntPath::from_env(),
             gaussian,
             hyper,
             simd: SimdMode::from_env(),
@@ -343,8 +355,20 @@ impl Codec {
         Ok((by, bz))
     }
 
-    /// Decompresses a container made with this codec's model.
+    /// Decompresses a container made with this codec's model: the same pixels on every CPU
+    /// (the integer synthesis, [`crate::kernels::int_synthesis`]).
     pub fn decode(&self, bytes: &[u8]) -> Result<Picture> {
+        self.decode_on(bytes, Synthesis::Integer)
+    }
+
+    /// Decompresses with the float synthesis the model was trained with: not exact across CPUs,
+    /// kept to measure what the integer synthesis costs (`cargo bench --bench codec`,
+    /// `examples/integer_cost`).
+    pub fn decode_float(&self, bytes: &[u8]) -> Result<Picture> {
+        self.decode_on(bytes, Synthesis::Float)
+    }
+
+    fn decode_on(&self, bytes: &[u8], synthesis: Synthesis) -> Result<Picture> {
         let (header, streams) = container::read(bytes)?;
         if header.model_fingerprint != self.file.fingerprint {
             return Err(KilnError::ModelMismatch {
@@ -358,7 +382,7 @@ impl Codec {
         let rects = container::tile_grid(header.width, header.height, header.tile_width, header.tile_height);
         let single = rects.len() == 1;
         for ((rect, record), s) in rects.into_iter().zip(&header.tiles).zip(streams) {
-            let rgb = self.decode_tile(rect, record, s, &gains)?;
+            let rgb = self.decode_tile(rect, record, s, &gains, synthesis)?;
             if single && c == 3 && rgb.len() == data.len() {
                 data = rgb; // one tile covering the image: already in place
                 continue;
@@ -385,6 +409,7 @@ impl Codec {
         record: &TileRecord,
         s: TileStreams,
         gains: &GainVectors,
+        synthesis: Synthesis,
     ) -> Result<Vec<u8>> {
         let cfg = &self.file.model.config;
         let (tw, th) = (rect.2 as usize, rect.3 as usize);
@@ -419,6 +444,9 @@ impl Codec {
             y_hat.push((q as f32 + prior.means[i]) * gains.y_inv[i / plane]);
         }
         dec_y.finish()?;
+        if synthesis == Synthesis::Integer {
+            return Ok(self.synthesis.decode_rgb8(&y_hat, cfg.m, hy, wy, tw, th, self.int_path));
+        }
         let y = Tensor::from_vec(y_hat, (1, cfg.m, hy, wy), &Device::Cpu)?;
         let x = self.file.model.g_s.forward_decode(&y)?; // (1, 3, s·hy, s·wy)
         Ok(crate::kernels::conv::with_f32(&x, |x| Ok(planes_to_rgb8(x, stride * hy, stride * wy, tw, th)))?)

@@ -7,9 +7,11 @@ pub mod fixed;
 pub mod fused_conv;
 pub mod fused_gdn;
 mod hyper_fixed;
+pub mod int_synthesis;
 mod narrow_conv;
 pub mod pixel_shuffle;
 mod winograd;
 
 pub use fixed::{FixedConv, SimdMode};
 pub use hyper_fixed::{HyperSynthesisFixed, PriorParameters};
+pub use int_synthesis::{IntPath, IntSynthesis};

@@ -293,6 +293,49 @@ impl Model {
         Ok(HyperSynthesisFixed::new([conv("h_s.0")?, conv("h_s.2")?, conv("h_s.4")?], self.config.nz))
     }
 
+    /// The integer synthesis built from this model's `g_s` weights (see
+    /// [`crate::kernels::int_synthesis`]); the inverse GDN's effective `β = β_raw² + 10⁻⁶` and
+    /// `γ = (γ_raw + √0.1·I)²` are computed here elementwise in `f32` (single IEEE operations,
+    /// so the same everywhere).
+    pub fn synthesis_integer(&self) -> Result<crate::kernels::IntSynthesis> {
+        let vars: HashMap<String, Var> = self.named_vars().into_iter().collect();
+        let get = |name: &str| -> Result<(Vec<f32>, Vec<usize>)> {
+            let t = vars
+                .get(name)
+                .ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?
+                .as_tensor();
+            Ok((t.flatten_all()?.to_vec1::<f32>()?, t.dims().to_vec()))
+        };
+        let mut stages = Vec::new();
+        for i in 0..self.config.stages {
+            let (weight, dims) = get(&format!("g_s.{}.weight", 2 * i))?;
+            let (bias, _) = get(&format!("g_s.{}.bias", 2 * i))?;
+            let igdn = if i + 1 < self.config.stages {
+                let (beta_raw, _) = get(&format!("g_s.{}.beta", 2 * i + 1))?;
+                let (gamma_raw, gdims) = get(&format!("g_s.{}.gamma", 2 * i + 1))?;
+                let c = gdims[0];
+                let beta: Vec<f32> = beta_raw.iter().map(|b| b * b + 1e-6).collect();
+                let offset = 0.316_227_77f32;
+                let gamma: Vec<f32> = (0..c * c)
+                    .map(|k| {
+                        let v = gamma_raw[k] + if k / c == k % c { offset } else { 0.0 };
+                        v * v
+                    })
+                    .collect();
+                Some((beta, gamma))
+            } else {
+                None
+            };
+            stages.push(crate::kernels::int_synthesis::StageParameters {
+                weight,
+                bias,
+                shape: (dims[1], dims[0], dims[2]),
+                igdn,
+            });
+        }
+        Ok(crate::kernels::IntSynthesis::new(&stages))
+    }
+
     /// Encoder and decoder multiply-adds per pixel `(encoder, decoder)`, the encoder including
     /// `h_s` (it needs the same means and scales).
     pub fn macs_per_pixel(&self) -> (f64, f64) {
