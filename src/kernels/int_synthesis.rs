@@ -39,7 +39,7 @@ const ACT_MAX: i64 = 32_767;
 /// Largest quantized weight magnitude (14 bits: a pair of products fits `i32` even at ±32 767).
 const WEIGHT_MAX: f64 = 16_383.0;
 /// Extra fractional bits of the inverse GDN's square root.
-pub const SQRT_EXTRA_BITS: u32 = 13;
+pub const SQRT_EXTRA_BITS: u32 = 8;
 /// Bound on any exponent chosen for a layer (an all-zero layer would otherwise have none).
 const EXP_CAP: i32 = 40;
 
@@ -78,7 +78,10 @@ enum Isa {
 fn isa() -> Isa {
     #[cfg(target_arch = "x86_64")]
     {
-        if std::arch::is_x86_feature_detected!("avx512bw") && std::arch::is_x86_feature_detected!("avx512f") {
+        if std::arch::is_x86_feature_detected!("avx512bw")
+            && std::arch::is_x86_feature_detected!("avx512f")
+            && std::arch::is_x86_feature_detected!("avx512dq")
+        {
             return Isa::Avx512;
         }
         if std::arch::is_x86_feature_detected!("avx2") {
@@ -127,208 +130,451 @@ fn scaled(x: f64, e: i32) -> f64 {
     x * 2f64.powi(e)
 }
 
-/// A quantized 3×3 (any odd `k`) stride-1 convolution.
+/// Output channels per packed weight block: one 512-bit vector of `i16` pairs.
+const CO_BLOCK: usize = 16;
+/// Output positions per micro-kernel step.
+const POS_BLOCK: usize = 4;
+
+/// An activation plane, channel-last, with a zero border: `[h + 2·pad][w + 2·pad][c]`.
+#[derive(Debug, Clone)]
+struct Plane {
+    data: Vec<i16>,
+    h: usize,
+    w: usize,
+    c: usize,
+    pad: usize,
+}
+
+impl Plane {
+    fn zeroed(h: usize, w: usize, c: usize, pad: usize) -> Self {
+        Plane { data: vec![0; (h + 2 * pad) * (w + 2 * pad) * c], h, w, c, pad }
+    }
+
+    /// Index of channel 0 at `(y, x)` (unpadded coordinates).
+    fn at(&self, y: usize, x: usize) -> usize {
+        ((y + self.pad) * (self.w + 2 * self.pad) + x + self.pad) * self.c
+    }
+
+    fn row_stride(&self) -> usize {
+        (self.w + 2 * self.pad) * self.c
+    }
+}
+
+/// A quantized stride-1 convolution (odd square kernel, zero padding `k / 2`).
 #[derive(Debug, Clone)]
 struct IntConv {
+    /// Input channels as stored in a [`Plane`]: rounded up to even (the extra one is zero).
     cin: usize,
     cout: usize,
     k: usize,
-    /// `[cout][ky][kx][cin]`.
-    weights: Vec<i16>,
+    /// Weights packed for pairwise multiply-adds: `[cout / 16][k·k·cin / 2][16][2]` (`cout`
+    /// rounded up to 16 with zero rows): for each block of 16 output channels and each pair of
+    /// elements `(2p, 2p+1)` of the patch `[ky][kx][cin]`, the two weights of each channel.
+    packed: Vec<i16>,
     /// Per output channel: the weights' exponent `s_c`.
     shifts: Vec<i32>,
     bias: Vec<f32>,
 }
 
 impl IntConv {
-    /// From float weights `[cout][cin][k][k]` and bias `[cout]`.
-    fn new(w: &[f32], bias: &[f32], cout: usize, cin: usize, k: usize) -> Self {
+    /// From float weights `[cout][cin][k][k]` and bias `[cout]`, each output channel's weights
+    /// to magnitudes of at most `limit` (14 bits for the convolutions).
+    fn new(w: &[f32], bias: &[f32], cout: usize, cin: usize, k: usize, limit: f64) -> Self {
         let per = cin * k * k;
-        let mut weights = vec![0i16; cout * per];
+        let cin_p = cin.next_multiple_of(2);
+        let pairs = k * k * cin_p / 2;
+        let blocks = cout.div_ceil(CO_BLOCK);
+        let mut packed = vec![0i16; blocks * pairs * 2 * CO_BLOCK];
         let mut shifts = vec![0i32; cout];
         for co in 0..cout {
             let row = &w[co * per..(co + 1) * per];
             let m = row.iter().fold(0f32, |a, &v| a.max(v.abs())) as f64;
-            let s = if m == 0.0 { 0 } else { (0..).map(|i| 30 - i).find(|&s| scaled(m, s) <= WEIGHT_MAX).unwrap_or(-30) };
+            let s = if m == 0.0 { 0 } else { (0..).map(|i| 40 - i).find(|&s| scaled(m, s) <= limit).unwrap_or(-40) };
             shifts[co] = s;
+            let (b, lane) = (co / CO_BLOCK, co % CO_BLOCK);
             for ci in 0..cin {
                 for ky in 0..k {
                     for kx in 0..k {
-                        let v = scaled(row[(ci * k + ky) * k + kx] as f64, s).round();
-                        weights[co * per + (ky * k + kx) * cin + ci] = v as i16;
+                        let q = scaled(row[(ci * k + ky) * k + kx] as f64, s).round() as i16;
+                        let t = (ky * k + kx) * cin_p + ci; // position in the patch
+                        packed[(b * pairs + t / 2) * 2 * CO_BLOCK + 2 * lane + t % 2] = q;
                     }
                 }
             }
         }
-        IntConv { cin, cout, k, weights, shifts, bias: bias.to_vec() }
+        IntConv { cin: cin_p, cout, k, packed, shifts, bias: bias.to_vec() }
     }
 
-    /// Sums of this layer over an `h × w` input with exponent `f`: `[h·w][cout]`, channel `c`
-    /// at exponent `f + s_c`.
-    fn sums(&self, x: &[i16], h: usize, w: usize, f: i32, path: IntPath) -> Vec<i32> {
-        let bias: Vec<i32> = (0..self.cout)
-            .map(|c| scaled(self.bias[c] as f64, f + self.shifts[c]).round().clamp(i32::MIN as f64, i32::MAX as f64) as i32)
-            .collect();
+    /// Sums of this layer over plane `x` (exponent `f`, border `k / 2`): `[h·w][cout]`,
+    /// channel `c` at exponent `f + s_c`, and each channel's largest magnitude.
+    fn sums(&self, x: &Plane, f: i32, path: IntPath) -> (Vec<i32>, Vec<u64>) {
+        assert_eq!((x.c, x.pad), (self.cin, self.k / 2), "plane layout of the convolution's input");
+        let bias = self.bias_at(f);
+        let (h, w) = (x.h, x.w);
         let mut out = vec![0i32; h * w * self.cout];
-        let row_len = w * self.cout;
-        out.par_chunks_mut(row_len).enumerate().for_each(|(y, row)| {
-            let mut patch = vec![0i16; self.k * self.k * self.cin];
-            conv_row(self, x, h, w, y, &bias, &mut patch, row, path);
-        });
-        out
+        let maxima = out
+            .par_chunks_mut(w * self.cout)
+            .enumerate()
+            .map(|(y, row)| {
+                let mut acc = vec![0i32; w * bias.len()];
+                self.row(x, y, &bias, &mut acc, path);
+                let mut m = vec![0u64; self.cout];
+                for (o, a) in row.chunks_mut(self.cout).zip(acc.chunks(bias.len())) {
+                    o.copy_from_slice(&a[..self.cout]);
+                    for (m, v) in m.iter_mut().zip(o.iter()) {
+                        *m = (*m).max(v.unsigned_abs() as u64);
+                    }
+                }
+                m
+            })
+            .reduce(|| vec![0u64; self.cout], |a, b| a.iter().zip(&b).map(|(x, y)| *x.max(y)).collect());
+        (out, maxima)
+    }
+
+    /// The bias of each output channel at exponent `f + s_c` (rows padded to a whole block).
+    fn bias_at(&self, f: i32) -> Vec<i32> {
+        let mut bias = vec![0i32; self.cout.div_ceil(CO_BLOCK) * CO_BLOCK];
+        for c in 0..self.cout {
+            bias[c] = scaled(self.bias[c] as f64, f + self.shifts[c]).round().clamp(i32::MIN as f64, i32::MAX as f64)
+                as i32;
+        }
+        bias
+    }
+
+    /// `acc[x][c]` (`c` over whole blocks) of output row `y`.
+    fn row(&self, p: &Plane, y: usize, bias: &[i32], acc: &mut [i32], path: IntPath) {
+        let g = RowGeometry { src: p.at(y, 0) - p.pad * p.row_stride() - p.pad * p.c, stride: p.row_stride(), w: p.w, k: self.k, c: p.c };
+        match (path, isa()) {
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: the CPU has AVX-512F and AVX-512BW (checked by `isa`).
+            (IntPath::Native, Isa::Avx512) => unsafe { x86::row_avx512(&self.packed, &p.data, &g, bias, acc) },
+            #[cfg(target_arch = "x86_64")]
+            // SAFETY: the CPU has AVX2 (checked by `isa`).
+            (IntPath::Native, Isa::Avx2) => unsafe { x86::row_avx2(&self.packed, &p.data, &g, bias, acc) },
+            _ => row_portable(&self.packed, &p.data, &g, bias, acc),
+        }
     }
 }
 
-/// One output row: for each position, gathers the zero-padded patch `[ky][kx][cin]`, then one
-/// dot product per output channel.
-#[allow(clippy::too_many_arguments)]
-fn conv_row(c: &IntConv, x: &[i16], h: usize, w: usize, y: usize, bias: &[i32], patch: &mut [i16], row: &mut [i32], path: IntPath) {
-    let dots = |patch: &[i16], out: &mut [i32]| match (path, isa()) {
-        #[cfg(target_arch = "x86_64")]
-        (IntPath::Native, Isa::Avx512) => unsafe { dots_avx512(&c.weights, patch, bias, out) },
-        #[cfg(target_arch = "x86_64")]
-        (IntPath::Native, Isa::Avx2) => unsafe { dots_avx2(&c.weights, patch, bias, out) },
-        _ => dots_portable(&c.weights, patch, bias, out),
-    };
-    let (k, cin) = (c.k, c.cin);
-    let pad = k / 2;
-    for xo in 0..w {
-        for ky in 0..k {
-            let yi = y as isize + ky as isize - pad as isize;
-            for kx in 0..k {
-                let xi = xo as isize + kx as isize - pad as isize;
-                let dst = &mut patch[(ky * k + kx) * cin..][..cin];
-                if yi < 0 || yi >= h as isize || xi < 0 || xi >= w as isize {
-                    dst.fill(0);
-                } else {
-                    dst.copy_from_slice(&x[(yi as usize * w + xi as usize) * cin..][..cin]);
+/// Where the patches of one output row lie in a padded plane: output `x`'s tap row `ky` is the
+/// `k·c` contiguous values from `src + ky·stride + x·c` (the `k` taps of that row, each `c`).
+struct RowGeometry {
+    src: usize,
+    stride: usize,
+    w: usize,
+    k: usize,
+    c: usize,
+}
+
+/// `acc[x][o] = bias[o] + Σ_{ky, t} src[ky][x·c + t] · weight[o][ky][t]` with wrapping `i32`
+/// sums: the reference for the vector kernels, which compute the same sums (so the same bits).
+fn row_portable(packed: &[i16], src: &[i16], g: &RowGeometry, bias: &[i32], acc: &mut [i32]) {
+    let wide = bias.len();
+    let seg = g.k * g.c / 2; // pairs per tap row
+    let pairs = g.k * seg;
+    for (x, out) in acc.chunks_mut(wide).enumerate().take(g.w) {
+        out.copy_from_slice(bias);
+        for (b, out) in out.chunks_mut(CO_BLOCK).enumerate() {
+            for ky in 0..g.k {
+                let row = &src[g.src + ky * g.stride + x * g.c..][..2 * seg];
+                for (p, pair) in row.chunks(2).enumerate() {
+                    let wp = &packed[(b * pairs + ky * seg + p) * 2 * CO_BLOCK..][..2 * CO_BLOCK];
+                    for (lane, o) in out.iter_mut().enumerate() {
+                        let v = pair[0] as i32 * wp[2 * lane] as i32 + pair[1] as i32 * wp[2 * lane + 1] as i32;
+                        *o = o.wrapping_add(v);
+                    }
                 }
             }
         }
-        dots(patch, &mut row[xo * c.cout..(xo + 1) * c.cout]);
     }
 }
 
-/// `out[c] = bias[c] + Σ_k weights[c][k] · patch[k]`, wrapping `i32` sums.
-#[inline(always)]
-fn dots_impl(weights: &[i16], patch: &[i16], bias: &[i32], out: &mut [i32]) {
-    let n = patch.len();
-    for (c, o) in out.iter_mut().enumerate() {
-        let wr = &weights[c * n..(c + 1) * n];
-        let mut acc = 0i32;
-        for (a, b) in wr.iter().zip(patch) {
-            acc = acc.wrapping_add(*a as i32 * *b as i32);
+#[cfg(target_arch = "x86_64")]
+mod x86 {
+    //! The same sums with `vpmaddwd`: each 32-bit lane multiplies a pair of activations by a
+    //! pair of weights and adds the two products (exact in `i32`: the factors are at most
+    //! 2¹⁵ − 1 and 2¹⁴ − 1), then `vpaddd` accumulates with wrapping, as the portable code does.
+    use std::arch::x86_64::*;
+
+    use super::{CO_BLOCK, POS_BLOCK, RowGeometry};
+
+    /// # Safety
+    /// The CPU must have AVX-512F and AVX-512BW; `src`, `packed`, `bias` and `acc` must hold
+    /// the row `g` describes (as the portable code indexes them).
+    #[target_feature(enable = "avx512f,avx512bw")]
+    pub unsafe fn row_avx512(packed: &[i16], src: &[i16], g: &RowGeometry, bias: &[i32], acc: &mut [i32]) {
+        let wide = bias.len();
+        let blocks = wide / CO_BLOCK;
+        let seg = g.k * g.c / 2;
+        let pairs = g.k * seg;
+        let mut x = 0;
+        while x < g.w {
+            let np = (g.w - x).min(POS_BLOCK);
+            let mut b = 0;
+            while b < blocks {
+                let nb = (blocks - b).min(4);
+                // SAFETY: the reads stay inside the tap rows of positions x..x+np and inside
+                // blocks b..b+nb of `packed`; the writes inside `acc` (the caller's contract).
+                unsafe {
+                    let mut s = [[_mm512_setzero_si512(); 4]; POS_BLOCK];
+                    for row in s.iter_mut().take(np) {
+                        for (i, v) in row.iter_mut().enumerate().take(nb) {
+                            *v = _mm512_loadu_si512(bias.as_ptr().add((b + i) * CO_BLOCK) as *const _);
+                        }
+                    }
+                    for ky in 0..g.k {
+                        let base = src.as_ptr().add(g.src + ky * g.stride + x * g.c);
+                        for p in 0..seg {
+                            let mut wv = [_mm512_setzero_si512(); 4];
+                            for (i, v) in wv.iter_mut().enumerate().take(nb) {
+                                *v = _mm512_loadu_si512(
+                                    packed.as_ptr().add(((b + i) * pairs + ky * seg + p) * 2 * CO_BLOCK) as *const _,
+                                );
+                            }
+                            for (j, row) in s.iter_mut().enumerate().take(np) {
+                                let a = _mm512_set1_epi32((base.add(j * g.c + 2 * p) as *const i32).read_unaligned());
+                                for (i, v) in row.iter_mut().enumerate().take(nb) {
+                                    *v = _mm512_add_epi32(*v, _mm512_madd_epi16(a, wv[i]));
+                                }
+                            }
+                        }
+                    }
+                    for (j, row) in s.iter().enumerate().take(np) {
+                        for (i, v) in row.iter().enumerate().take(nb) {
+                            _mm512_storeu_si512(acc.as_mut_ptr().add((x + j) * wide + (b + i) * CO_BLOCK) as *mut _, *v);
+                        }
+                    }
+                }
+                b += nb;
+            }
+            x += np;
         }
-        *o = acc.wrapping_add(bias[c]);
+    }
+
+    /// # Safety
+    /// As [`row_avx512`], with AVX2.
+    #[target_feature(enable = "avx2")]
+    pub unsafe fn row_avx2(packed: &[i16], src: &[i16], g: &RowGeometry, bias: &[i32], acc: &mut [i32]) {
+        let wide = bias.len();
+        let blocks = wide / CO_BLOCK;
+        let seg = g.k * g.c / 2;
+        let pairs = g.k * seg;
+        let mut x = 0;
+        while x < g.w {
+            let np = (g.w - x).min(POS_BLOCK);
+            for b in 0..blocks {
+                // SAFETY: as in `row_avx512`, one block of 16 channels as two 8-lane halves.
+                unsafe {
+                    let mut s = [[_mm256_setzero_si256(); 2]; POS_BLOCK];
+                    for row in s.iter_mut().take(np) {
+                        for (h, v) in row.iter_mut().enumerate() {
+                            *v = _mm256_loadu_si256(bias.as_ptr().add(b * CO_BLOCK + 8 * h) as *const _);
+                        }
+                    }
+                    for ky in 0..g.k {
+                        let base = src.as_ptr().add(g.src + ky * g.stride + x * g.c);
+                        for p in 0..seg {
+                            let wp = packed.as_ptr().add((b * pairs + ky * seg + p) * 2 * CO_BLOCK);
+                            let w0 = _mm256_loadu_si256(wp as *const _);
+                            let w1 = _mm256_loadu_si256(wp.add(16) as *const _);
+                            for (j, row) in s.iter_mut().enumerate().take(np) {
+                                let a = _mm256_set1_epi32((base.add(j * g.c + 2 * p) as *const i32).read_unaligned());
+                                row[0] = _mm256_add_epi32(row[0], _mm256_madd_epi16(a, w0));
+                                row[1] = _mm256_add_epi32(row[1], _mm256_madd_epi16(a, w1));
+                            }
+                        }
+                    }
+                    for (j, row) in s.iter().enumerate().take(np) {
+                        for (h, v) in row.iter().enumerate() {
+                            _mm256_storeu_si256(acc.as_mut_ptr().add((x + j) * wide + b * CO_BLOCK + 8 * h) as *mut _, *v);
+                        }
+                    }
+                }
+            }
+            x += np;
+        }
     }
 }
 
-fn dots_portable(weights: &[i16], patch: &[i16], bias: &[i32], out: &mut [i32]) {
-    dots_impl(weights, patch, bias, out)
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn dots_avx2(weights: &[i16], patch: &[i16], bias: &[i32], out: &mut [i32]) {
-    dots_impl(weights, patch, bias, out)
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f,avx512bw")]
-unsafe fn dots_avx512(weights: &[i16], patch: &[i16], bias: &[i32], out: &mut [i32]) {
-    dots_impl(weights, patch, bias, out)
-}
+/// Largest channel count of an inverse GDN (its `γ` keeps at least 8 bits per row).
+const IGDN_MAX_CHANNELS: usize = 256;
 
 /// A quantized inverse GDN over `c` channels.
 #[derive(Debug, Clone)]
 struct IntIgdn {
     c: usize,
     beta: Vec<f32>,
-    /// `[i][j]`, row `i` at exponent `g_i`.
-    gamma: Vec<i16>,
-    gamma_shifts: Vec<i32>,
+    /// `γ` as a 1×1 convolution (no bias): row `i` at exponent `g_i`, magnitudes at most
+    /// `⌊(2³¹ − 1) / (c · 32 767)⌋` (1023 for 64 channels), so that a whole row's sum over
+    /// 15-bit squares fits `i32` and runs on the convolution's multiply-add kernel.
+    gamma: IntConv,
 }
 
 impl IntIgdn {
     /// From the effective `β` `[c]` and `γ` `[c][c]` (both non-negative).
     fn new(beta: &[f32], gamma: &[f32], c: usize) -> Self {
-        let mut q = vec![0i16; c * c];
-        let mut shifts = vec![0i32; c];
-        for i in 0..c {
-            let row = &gamma[i * c..(i + 1) * c];
-            let m = row.iter().fold(0f32, |a, &v| a.max(v.abs())) as f64;
-            let s = if m == 0.0 { 0 } else { (0..).map(|k| 40 - k).find(|&s| scaled(m, s) <= WEIGHT_MAX).unwrap_or(-40) };
-            shifts[i] = s;
-            for j in 0..c {
-                q[i * c + j] = scaled(row[j] as f64, s).round() as i16;
-            }
-        }
-        IntIgdn { c, beta: beta.to_vec(), gamma: q, gamma_shifts: shifts }
+        assert!(c <= IGDN_MAX_CHANNELS, "inverse GDN over {c} channels (at most {IGDN_MAX_CHANNELS})");
+        let limit = (i32::MAX as u64 / (c as u64 * ACT_MAX as u64)) as f64;
+        IntIgdn { c, beta: beta.to_vec(), gamma: IntConv::new(gamma, &vec![0.0; c], c, c, 1, limit) }
     }
 
-    /// Applies the layer to `n` positions of `x` (exponent `f`); returns the outputs and the
-    /// exponent they share.
-    fn forward(&self, x: &[i16], f: i32) -> (Vec<i16>, i32) {
+    /// Applies the layer to plane `x` (border 0, exponent `f`); returns the outputs as a plane
+    /// with border `pad` for the next convolution, and their exponent.
+    ///
+    /// The output exponent is chosen before any output is computed, from a bound: channel
+    /// `i`'s products are at most `max|a_i| · isqrt_scaled(β_i + Σ_j γ_ij · max q_j)` (each
+    /// factor at its largest), so one pass suffices; the bound is loose by the factor between
+    /// that combination of per-channel maxima and the largest actual product.
+    fn forward(&self, x: &Plane, f: i32, pad: usize, path: IntPath) -> (Plane, i32) {
         let c = self.c;
-        let max_a = x.iter().map(|v| v.unsigned_abs() as u64).max().unwrap_or(0);
-        // Squares to 15 bits with one shift t ≥ 0: exponent 2f − t.
-        let t = (-headroom(max_a * max_a, ACT_MAX as u64)).max(0);
-        // Per row i: the sum's exponent E_i = 2f − t + g_i, made even; β at that scale.
-        let mut exps = vec![0i32; c];
-        let mut doubled = vec![false; c];
-        let mut beta_q = vec![0i64; c];
-        for i in 0..c {
-            let e = 2 * f - t + self.gamma_shifts[i];
-            doubled[i] = e % 2 != 0;
-            exps[i] = if doubled[i] { e + 1 } else { e };
-            beta_q[i] = scaled(self.beta[i] as f64, e).round().min((1u64 << 62) as f64) as i64;
+        assert_eq!((x.c, x.pad), (self.gamma.cin, 0), "plane layout of the inverse GDN's input");
+        let cp = x.c;
+        let max_per_channel = x.data.chunks(cp).fold(vec![0u64; cp], |mut m, px| {
+            for (m, v) in m.iter_mut().zip(px) {
+                *m = (*m).max(v.unsigned_abs() as u64);
+            }
+            m
+        });
+        let max_a = max_per_channel.iter().copied().max().unwrap_or(0);
+        // Squares to 15 bits with one shift t ≥ 0 (exponent 2f − t), and t large enough that
+        // every β_i at its sum's exponent E_i = 2f − t + g_i stays below 2^BETA_BITS.
+        let mut t = (-headroom(max_a * max_a, ACT_MAX as u64)).max(0);
+        while (0..c).any(|i| scaled(self.beta[i] as f64, 2 * f - t + self.gamma.shifts[i]) >= (1u64 << BETA_BITS) as f64) {
+            t += 1;
         }
-        // Per channel i, the output exponent: f + E_i/2 + SQRT_EXTRA_BITS.
-        let out_exp: Vec<i32> = exps.iter().map(|e| f + e / 2 + SQRT_EXTRA_BITS as i32).collect();
-        let (beta_q, doubled) = (&beta_q, &doubled);
-        let products: Vec<i64> = x
-            .par_chunks(c)
-            .flat_map_iter(|a| {
-                let sq: Vec<i64> = a.iter().map(|&v| round_shift(v as i64 * v as i64, t)).collect();
-                (0..c).map(move |i| {
-                    let row = &self.gamma[i * c..(i + 1) * c];
-                    let mut s: i64 = 0;
-                    for (g, q) in row.iter().zip(&sq) {
-                        s += *g as i64 * q;
-                    }
-                    let s = s.saturating_add(beta_q[i]);
-                    let s = if doubled[i] { s.saturating_mul(2) } else { s }.max(0) as u128;
-                    // s < 2⁶³, so r < 2^(31.5 + SQRT_EXTRA_BITS) and a·r fits i64.
-                    let r = (s << (2 * SQRT_EXTRA_BITS)).isqrt() as i64;
-                    a[i] as i64 * r
-                })
+        // Per row i: E_i made even by doubling the sum; β at E_i (exact: a power-of-two
+        // product, then a rounding).
+        let mut rows = RowTerms { beta_q: Vec::with_capacity(c), doubling: Vec::with_capacity(c) };
+        let mut out_exp = Vec::with_capacity(c);
+        for i in 0..c {
+            let e = 2 * f - t + self.gamma.shifts[i];
+            let doubled = e % 2 != 0;
+            let e_even = if doubled { e + 1 } else { e };
+            rows.beta_q.push(scaled(self.beta[i] as f64, e).round() as i64);
+            rows.doubling.push(doubled as u32);
+            out_exp.push(f + e_even / 2 + SQRT_EXTRA_BITS as i32);
+        }
+        // The bound on each channel's products, then the exponent they all fit at.
+        let max_q: Vec<i16> = max_per_channel.iter().map(|&m| round_shift((m * m) as i64, t) as i16).collect();
+        let mut bound_sums = vec![0i32; c.div_ceil(CO_BLOCK) * CO_BLOCK];
+        let q_plane = Plane { data: max_q, h: 1, w: 1, c: cp, pad: 0 };
+        self.gamma.row(&q_plane, 0, &vec![0i32; bound_sums.len()], &mut bound_sums, IntPath::Portable);
+        let bounds: Vec<u64> = (0..c)
+            .map(|i| {
+                let s = ((bound_sums[i] as i64 + rows.beta_q[i]) << rows.doubling[i]) as u64;
+                max_per_channel[i] * isqrt_scaled(s)
             })
             .collect();
-        requantize(&products, c, &out_exp)
+        let f_out = shared_exponent(&bounds, &out_exp);
+        let shifts: Vec<i32> = out_exp.iter().map(|e| e - f_out).collect();
+        let mut next = Plane::zeroed(x.h, x.w, c.next_multiple_of(2), pad);
+        let (stride, start) = (next.row_stride(), next.at(0, 0));
+        let wide = bound_sums.len();
+        next.data[start..].par_chunks_mut(stride).take(x.h).enumerate().for_each_init(
+            || (Plane::zeroed(1, x.w, cp, 0), vec![0i32; x.w * wide], vec![0i32; wide]),
+            |(sq, sums, zero), (y, dst)| {
+                let src = &x.data[y * x.w * cp..(y + 1) * x.w * cp];
+                squares(src, t, &mut sq.data);
+                self.gamma.row(sq, 0, zero, sums, path);
+                let args = RowArgs { sums, wide, rows: &rows, act: src, cp, shifts: &shifts, out: dst };
+                match (path, isa()) {
+                    #[cfg(target_arch = "x86_64")]
+                    // SAFETY: the CPU has AVX-512F, BW and DQ (checked by `isa`).
+                    (IntPath::Native, Isa::Avx512) => unsafe { igdn_row_avx512(args) },
+                    #[cfg(target_arch = "x86_64")]
+                    // SAFETY: the CPU has AVX2 (checked by `isa`).
+                    (IntPath::Native, Isa::Avx2) => unsafe { igdn_row_avx2(args) },
+                    _ => igdn_row(args),
+                }
+            },
+        );
+        (next, f_out)
     }
 }
 
-/// Requantizes `[n][c]` values, channel `i` at exponent `exps[i]`, to `i16` with one shared
-/// exponent (the largest at which every value fits); returns the values and that exponent.
-fn requantize(v: &[i64], c: usize, exps: &[i32]) -> (Vec<i16>, i32) {
-    let f = channel_maxima(v, c)
-        .iter()
-        .zip(exps)
-        .map(|(&m, &e)| e + headroom(m, ACT_MAX as u64))
-        .min()
-        .unwrap_or(0)
-        .min(EXP_CAP);
-    let out = v.par_chunks(c).flat_map_iter(|px| px.iter().zip(exps).map(move |(&p, &e)| to_act(round_shift(p, e - f)))).collect();
-    (out, f)
+/// `q = round_shift(a², t)` for every activation (at most 32 767 by the choice of `t`).
+fn squares(a: &[i16], t: i32, q: &mut [i16]) {
+    if t == 0 {
+        for (q, &v) in q.iter_mut().zip(a) {
+            *q = (v as i32 * v as i32) as i16;
+        }
+    } else {
+        let half = 1i32 << (t - 1);
+        for (q, &v) in q.iter_mut().zip(a) {
+            *q = ((v as i32 * v as i32 + half) >> t) as i16;
+        }
+    }
 }
 
-fn channel_maxima(v: &[i64], c: usize) -> Vec<u64> {
-    v.chunks(c).fold(vec![0u64; c], |mut m, px| {
-        for (m, p) in m.iter_mut().zip(px) {
-            *m = (*m).max(p.unsigned_abs());
+/// Per output channel of an inverse GDN: `β_i` at its sum's exponent, and 1 where the sum is
+/// doubled to make that exponent even.
+struct RowTerms {
+    beta_q: Vec<i64>,
+    doubling: Vec<u32>,
+}
+
+/// One row of an inverse GDN after its `γ` sums.
+struct RowArgs<'a> {
+    /// `[w][wide]` sums `Σ_j γ_ij q_j`.
+    sums: &'a [i32],
+    wide: usize,
+    rows: &'a RowTerms,
+    /// `[w][cp]` input activations.
+    act: &'a [i16],
+    cp: usize,
+    /// Per channel: the requantization shift to the output exponent.
+    shifts: &'a [i32],
+    /// `[w][cp]` output activations (in a padded plane's row).
+    out: &'a mut [i16],
+}
+
+/// `out[x][i] = clamp(round_shift(a · isqrt_scaled((sum + β_i) << doubling_i), shift_i))`.
+/// The sum is below 2⁴⁸ (β below 2^BETA_BITS, the γ sum below 2³¹), so nothing overflows.
+#[inline(always)]
+fn igdn_row(r: RowArgs) {
+    let c = r.rows.beta_q.len();
+    let w = r.act.len() / r.cp;
+    for x in 0..w {
+        let (s, a) = (&r.sums[x * r.wide..][..c], &r.act[x * r.cp..][..c]);
+        let o = &mut r.out[x * r.cp..][..c];
+        for i in 0..c {
+            let sum = ((s[i] as i64 + r.rows.beta_q[i]) << r.rows.doubling[i]) as u64;
+            o[i] = to_act(round_shift(a[i] as i64 * isqrt_scaled(sum) as i64, r.shifts[i]));
         }
-        m
-    })
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn igdn_row_avx2(r: RowArgs) {
+    igdn_row(r)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f,avx512bw,avx512dq")]
+unsafe fn igdn_row_avx512(r: RowArgs) {
+    igdn_row(r)
+}
+
+/// The largest exponent at which every channel fits ±32 767, channel `i` having largest
+/// magnitude `maxima[i]` at exponent `exps[i]`.
+fn shared_exponent(maxima: &[u64], exps: &[i32]) -> i32 {
+    maxima.iter().zip(exps).map(|(&m, &e)| e + headroom(m, ACT_MAX as u64)).min().unwrap_or(0).min(EXP_CAP)
+}
+
+/// `β` at its sum's scale stays below `2^BETA_BITS` (the squares' shift grows until it does),
+/// so every inverse-GDN sum, doubled, is below 2⁴⁸ and `sum · 2^(2·SQRT_EXTRA_BITS)` below 2⁶⁴.
+const BETA_BITS: u32 = 46;
+
+/// `⌊sqrt(s · 2^(2·SQRT_EXTRA_BITS))⌋` for `s < 2⁴⁸`, exactly: the float square root of
+/// `v = s · 2^(2·SQRT_EXTRA_BITS)` is within one of the result (relative error below 2⁻⁵²,
+/// result below 2³²), and one integer step each way corrects it. No branches, so it vectorizes.
+#[inline(always)]
+fn isqrt_scaled(s: u64) -> u64 {
+    let v = s << (2 * SQRT_EXTRA_BITS);
+    let r = ((v as f64).sqrt() as u64).min(u32::MAX as u64);
+    let r = r - (r * r > v) as u64;
+    r + ((r < u32::MAX as u64) & ((r + 1) * (r + 1) <= v)) as u64
 }
 
 /// `g_s` in integer arithmetic (see the module docs).
@@ -338,8 +584,7 @@ pub struct IntSynthesis {
     igdns: Vec<IntIgdn>,
 }
 
-/// The float parameters of one synthesis stage: conv weight `[cout][cin][k][k]`, bias, and
-/// the effective inverse-GDN `(β, γ)` after every stage but the last.
+/// The float parameters of one synthesis stage.
 pub struct StageParameters {
     /// Convolution weight, `[4·C_out][C_in][k][k]` row-major.
     pub weight: Vec<f32>,
@@ -347,7 +592,8 @@ pub struct StageParameters {
     pub bias: Vec<f32>,
     /// `(C_in, 4·C_out, k)`.
     pub shape: (usize, usize, usize),
-    /// Effective `β` `[C_out]` and `γ` `[C_out][C_out]` of the inverse GDN after the layer.
+    /// Effective `β` `[C_out]` and `γ` `[C_out][C_out]` of the inverse GDN after the layer
+    /// (every stage but the last).
     pub igdn: Option<(Vec<f32>, Vec<f32>)>,
 }
 
@@ -358,7 +604,7 @@ impl IntSynthesis {
         let mut igdns = Vec::new();
         for s in stages {
             let (cin, cout, k) = s.shape;
-            convs.push(IntConv::new(&s.weight, &s.bias, cout, cin, k));
+            convs.push(IntConv::new(&s.weight, &s.bias, cout, cin, k, WEIGHT_MAX));
             if let Some((beta, gamma)) = &s.igdn {
                 igdns.push(IntIgdn::new(beta, gamma, cout / 4));
             }
@@ -368,6 +614,7 @@ impl IntSynthesis {
 
     /// Decodes latent `y` (`[m][hy][wy]`, already multiplied by the inverse gains) to 8-bit RGB,
     /// cropped to `tw × th`, interleaved.
+    #[allow(clippy::too_many_arguments)]
     pub fn decode_rgb8(&self, y: &[f32], m: usize, hy: usize, wy: usize, tw: usize, th: usize, path: IntPath) -> Vec<u8> {
         // Input: one exponent from the exact largest magnitude (a power-of-two product of a
         // float is exact, so is the rounding).
@@ -376,43 +623,50 @@ impl IntSynthesis {
         while f < EXP_CAP && scaled(max, f + 1) <= ACT_MAX as f64 {
             f += 1;
         }
+        let first = &self.convs[0];
+        let mut x = Plane::zeroed(hy, wy, first.cin, first.k / 2);
         let plane = hy * wy;
-        let mut x = vec![0i16; plane * m];
-        for ch in 0..m {
-            for p in 0..plane {
-                x[p * m + ch] = to_act(scaled(y[ch * plane + p] as f64, f).round() as i64);
+        for p in 0..plane {
+            let at = x.at(p / wy, p % wy);
+            for ch in 0..m {
+                x.data[at + ch] = to_act(scaled(y[ch * plane + p] as f64, f).round() as i64);
             }
         }
-        let (mut h, mut w) = (hy, wy);
         let last = self.convs.len() - 1;
         for (i, conv) in self.convs.iter().enumerate() {
-            let sums = conv.sums(&x, h, w, f, path);
+            let (sums, maxima) = conv.sums(&x, f, path);
             let exps: Vec<i32> = conv.shifts.iter().map(|s| f + s).collect();
             if i == last {
-                return to_rgb8(&sums, &exps, h, w, tw, th);
+                return to_rgb8(&sums, &exps, x.h, x.w, tw, th);
             }
-            let (q, f_out) = requantize(&sums.iter().map(|&v| v as i64).collect::<Vec<_>>(), conv.cout, &exps);
-            let c = conv.cout / 4;
-            let mut up = vec![0i16; 4 * h * w * c];
-            let w2 = 2 * w;
-            for yy in 0..h {
-                for xx in 0..w {
-                    let src = &q[(yy * w + xx) * conv.cout..][..conv.cout];
-                    for ch in 0..c {
-                        for d in 0..4 {
-                            let (dy, dx) = (d / 2, d % 2);
-                            up[((2 * yy + dy) * w2 + 2 * xx + dx) * c + ch] = src[4 * ch + d];
-                        }
-                    }
-                }
-            }
-            (h, w) = (2 * h, 2 * w);
-            let (a, f_next) = self.igdns[i].forward(&up, f_out);
-            x = a;
-            f = f_next;
+            let f_out = shared_exponent(&maxima, &exps);
+            let up = depth_to_space(&sums, &exps, f_out, x.h, x.w, conv.cout / 4, self.igdns[i].gamma.cin);
+            let pad = self.convs[i + 1].k / 2;
+            (x, f) = self.igdns[i].forward(&up, f_out, pad, path);
         }
         unreachable!("the last stage returns")
     }
+}
+
+/// Requantizes conv sums `[h·w][4c]` (channel `o` at exponent `exps[o]`) to exponent `f` and
+/// rearranges them: channel `4ch + 2dy + dx` of `(y, x)` goes to channel `ch` of
+/// `(2y + dy, 2x + dx)`, in a border-less plane of `cp ≥ c` channels.
+fn depth_to_space(sums: &[i32], exps: &[i32], f: i32, h: usize, w: usize, c: usize, cp: usize) -> Plane {
+    let mut up = Plane::zeroed(2 * h, 2 * w, cp, 0);
+    let row2 = 2 * w * cp;
+    up.data.par_chunks_mut(2 * row2).enumerate().for_each(|(y, rows)| {
+        for x in 0..w {
+            let src = &sums[(y * w + x) * 4 * c..][..4 * c];
+            for ch in 0..c {
+                for d in 0..4 {
+                    let (dy, dx) = (d / 2, d % 2);
+                    let o = 4 * ch + d;
+                    rows[dy * row2 + (2 * x + dx) * cp + ch] = to_act(round_shift(src[o] as i64, exps[o] - f));
+                }
+            }
+        }
+    });
+    up
 }
 
 /// The last layer's sums (`[h·w][12]`, channel `4c + 2dy + dx` at exponent `exps[·]`) as 8-bit
