@@ -208,6 +208,14 @@ impl Codec {
         })
     }
 
+    /// Runs the integer synthesis on `path` (by default `KILN_SIMD` decides: see
+    /// [`IntPath::from_env`]). The decoded pixels are the same on every path; only the speed
+    /// differs.
+    pub fn with_int_path(mut self, path: IntPath) -> Self {
+        self.int_path = path;
+        self
+    }
+
     /// Makes the encoder refine each tile's latent (see [`crate::refine`]); decoding is unchanged.
     pub fn with_refinement(mut self, config: RefineConfig) -> Result<Self> {
         config.validate()?;

@@ -5,39 +5,46 @@
 //! # Arithmetic
 //!
 //! Activations are `i16` in channel-last layout, every element of a layer sharing one binary
-//! exponent `f` (value = `a · 2^−f`). Per tile and layer, `f` is the largest exponent at which
-//! the layer's largest magnitude still fits in ±32 767 ([`headroom`]): the scale follows the
-//! data, computed from exact integer (or exact float) maxima, so it is the same everywhere.
+//! exponent `f` (value = `a · 2^−f`), chosen per tile and layer from exact maxima: the largest
+//! exponent at which the layer's values fit the limit of the layer that reads them. So the scale
+//! follows the data, and is the same everywhere.
 //!
-//! - **Convolutions** (3×3 sub-pixel layers, stride 1, zero padding): weights are quantized per
-//!   output channel `c` to 14-bit magnitudes with a power-of-two scale `2^s_c`
-//!   (`w_q = round(w · 2^s_c)`, exact in floating point: a power-of-two product and a
-//!   rounding); products are summed in `i32` with wrapping addition, starting from the bias
-//!   `round(b · 2^(f + s_c))`. Wrapping sums are exact modulo 2³² in any order, so vectorized,
-//!   blocked and threaded evaluations agree bit for bit.
-//! - **Requantization** to the next `i16` layer: `round_shift(acc, e)` = `(acc + 2^(e−1)) >> e`
-//!   (round half up, arithmetic shift) for `e > 0`, a left shift for `e ≤ 0`, clamped to
-//!   ±32 767. Depth-to-space is folded into where each value is written.
-//! - **Inverse GDN** `x_i · sqrt(β_i + Σ_j γ_ij x_j²)`: squares `a_j²` (exact in `i32`)
-//!   requantized to 15 bits with one tile-wide shift; `γ` per row to 14 bits with a power-of-two
-//!   scale; the sum in `i64` (exact, no overflow: 64 terms of at most 2²⁹); `β_i` rounded at the
-//!   sum's scale (an exact power-of-two product in `f64`); the exponent made even by doubling
-//!   the sum; the square root by [`u64::isqrt`] of the sum shifted by [`SQRT_EXTRA_BITS`]·2
-//!   (exact integer square root); the product with `a_i` in `i64`.
+//! - **Convolutions** (sub-pixel layers, stride 1, zero padding): each output channel `c`'s
+//!   weights are quantized to magnitudes of at most 2047 (11 bits) with a power-of-two scale
+//!   (`w_q = round(w · 2^s_c)`: a power-of-two product and a rounding, exact in floating
+//!   point). A layer's input is limited to `⌊2³⁰ / max_c Σ|w_q[c]|⌋` (about 12–13 bits for the
+//!   shipped models) and its exponent so that every bias `round(b · 2^(f + s_c))` is below
+//!   2³⁰: then no `i32` sum can overflow, whatever the image. Integer sums are exact in any
+//!   order, so vectorized, blocked and threaded evaluations agree bit for bit. (14-bit weights
+//!   with the same guarantee leave the activations 9–10 bits and cost up to 0.17 dB; 11 bits cost
+//!   at most 0.005 dB against the float synthesis: `examples/integer_cost`.)
+//! - **Requantization**: `round_shift(acc, e)` = `(acc + 2^(e−1)) >> e` (round half up,
+//!   arithmetic shift) for `e > 0`, a left shift for `e ≤ 0`, clamped to ±32 767 (never
+//!   reached when the exponent came from the data's maxima). Depth-to-space is folded into where
+//!   each value is written.
+//! - **Inverse GDN** `x_i · sqrt(β_i + Σ_j γ_ij x_j²)`: the squares `a_j²` (exact in `i32`)
+//!   requantized to 15 bits with one tile-wide shift `t`; `γ` per row to magnitudes at most
+//!   `⌊(2³¹ − 1) / (c · 32 767)⌋` (1023 for 64 channels), so that a row's sum fits `i32` and
+//!   runs on the convolution kernel; `β_i` rounded at the sum's scale (an exact power-of-two
+//!   product in `f64`), `t` grown until every `β_i` there is below 2⁴⁶; the sum's exponent made
+//!   even by doubling the sum; the square root exact ([`isqrt_scaled`], with
+//!   [`SQRT_EXTRA_BITS`] more bits); the product with `a_i` in `i64`. The output exponent comes
+//!   from a bound (each factor at its channel's largest), so one pass suffices.
 //! - **Output**: the last layer's sums become 8-bit samples as `clamp(round(acc · 255 · 2^−e))`
-//!   in `i64` (round half up), the same rounding as the float path's `round(v · 255)` up to ties.
+//!   in `i64` (round half up).
 //!
 //! What must hold for exact decoding: the input latent is itself exact (it is: entropy decoding
 //! and the fixed-order hyper-synthesis), every per-element step above is a function of integer
-//! inputs (or of single IEEE operations on exactly representable values), and sums are integer.
-//! Nothing here reads the CPU's features except to choose how fast the same sums are computed.
+//! inputs (or of single IEEE operations on exactly representable values), and sums are
+//! integer. Nothing here reads the CPU's features except to choose how fast the same sums are
+//! computed.
 
 use rayon::prelude::*;
 
 /// Largest activation magnitude (symmetric, so no `−32 768`).
 const ACT_MAX: i64 = 32_767;
-/// Largest quantized weight magnitude (14 bits: a pair of products fits `i32` even at ±32 767).
-const WEIGHT_MAX: f64 = 16_383.0;
+/// Largest quantized weight magnitude of the convolutions (11 bits; see the module docs).
+const WEIGHT_MAX: f64 = 2047.0;
 /// Extra fractional bits of the inverse GDN's square root.
 pub const SQRT_EXTRA_BITS: u32 = 8;
 /// Bound on any exponent chosen for a layer (an all-zero layer would otherwise have none).
@@ -174,11 +181,16 @@ struct IntConv {
     /// Per output channel: the weights' exponent `s_c`.
     shifts: Vec<i32>,
     bias: Vec<f32>,
+    /// Largest input magnitude for which no sum can overflow: `⌊2³⁰ / max_c Σ_t |w_q[c][t]|⌋`
+    /// (at most 32 767); with the bias below 2³⁰ every sum stays inside `i32`.
+    input_limit: u64,
+    /// Largest input exponent `f` at which every bias `|b_c| · 2^(f + s_c)` is below 2³⁰.
+    bias_cap: i32,
 }
 
 impl IntConv {
     /// From float weights `[cout][cin][k][k]` and bias `[cout]`, each output channel's weights
-    /// to magnitudes of at most `limit` (14 bits for the convolutions).
+    /// to magnitudes of at most `limit` ([`WEIGHT_MAX`] for the convolutions).
     fn new(w: &[f32], bias: &[f32], cout: usize, cin: usize, k: usize, limit: f64) -> Self {
         let per = cin * k * k;
         let cin_p = cin.next_multiple_of(2);
@@ -202,7 +214,42 @@ impl IntConv {
                 }
             }
         }
-        IntConv { cin: cin_p, cout, k, packed, shifts, bias: bias.to_vec() }
+        let l1 = (0..blocks * CO_BLOCK)
+            .map(|co| {
+                let (b, lane) = (co / CO_BLOCK, co % CO_BLOCK);
+                (0..pairs * 2)
+                    .map(|t| packed[(b * pairs + t / 2) * 2 * CO_BLOCK + 2 * lane + t % 2].unsigned_abs() as u64)
+                    .sum::<u64>()
+            })
+            .max()
+            .unwrap_or(0);
+        let input_limit = ((1u64 << 30) / l1.max(1)).min(ACT_MAX as u64);
+        let bias_cap = (0..cout)
+            .map(|c| {
+                let b = (bias[c] as f64).abs();
+                let mut f = EXP_CAP;
+                while f > -EXP_CAP && scaled(b, f + shifts[c]) >= (1u64 << 30) as f64 {
+                    f -= 1;
+                }
+                f
+            })
+            .min()
+            .unwrap_or(EXP_CAP);
+        IntConv { cin: cin_p, cout, k, packed, shifts, bias: bias.to_vec(), input_limit, bias_cap }
+    }
+
+    /// The exponent an input to this layer takes: the largest at which channel maxima `maxima`
+    /// (each at exponent `exps[i]`) fit [`IntConv::input_limit`], and at most
+    /// [`IntConv::bias_cap`]: no sum of the layer can then overflow.
+    fn input_exponent(&self, maxima: &[u64], exps: &[i32]) -> i32 {
+        maxima
+            .iter()
+            .zip(exps)
+            .map(|(&m, &e)| e + headroom(m, self.input_limit))
+            .min()
+            .unwrap_or(EXP_CAP)
+            .min(self.bias_cap)
+            .min(EXP_CAP)
     }
 
     /// Sums of this layer over plane `x` (exponent `f`, border `k / 2`): `[h·w][cout]`,
@@ -235,15 +282,21 @@ impl IntConv {
     fn bias_at(&self, f: i32) -> Vec<i32> {
         let mut bias = vec![0i32; self.cout.div_ceil(CO_BLOCK) * CO_BLOCK];
         for c in 0..self.cout {
-            bias[c] = scaled(self.bias[c] as f64, f + self.shifts[c]).round().clamp(i32::MIN as f64, i32::MAX as f64)
-                as i32;
+            bias[c] =
+                scaled(self.bias[c] as f64, f + self.shifts[c]).round().clamp(i32::MIN as f64, i32::MAX as f64) as i32;
         }
         bias
     }
 
     /// `acc[x][c]` (`c` over whole blocks) of output row `y`.
     fn row(&self, p: &Plane, y: usize, bias: &[i32], acc: &mut [i32], path: IntPath) {
-        let g = RowGeometry { src: p.at(y, 0) - p.pad * p.row_stride() - p.pad * p.c, stride: p.row_stride(), w: p.w, k: self.k, c: p.c };
+        let g = RowGeometry {
+            src: p.at(y, 0) - p.pad * p.row_stride() - p.pad * p.c,
+            stride: p.row_stride(),
+            w: p.w,
+            k: self.k,
+            c: p.c,
+        };
         match (path, isa()) {
             #[cfg(target_arch = "x86_64")]
             // SAFETY: the CPU has AVX-512F and AVX-512BW (checked by `isa`).
@@ -293,7 +346,8 @@ fn row_portable(packed: &[i16], src: &[i16], g: &RowGeometry, bias: &[i32], acc:
 mod x86 {
     //! The same sums with `vpmaddwd`: each 32-bit lane multiplies a pair of activations by a
     //! pair of weights and adds the two products (exact in `i32`: the factors are at most
-    //! 2¹⁵ − 1 and 2¹⁴ − 1), then `vpaddd` accumulates with wrapping, as the portable code does.
+    //! 2¹⁵ − 1 and 2¹¹ − 1), then `vpaddd` accumulates, as the portable code does (the layer's
+    //! input limit keeps every sum inside `i32`).
     use std::arch::x86_64::*;
 
     use super::{CO_BLOCK, POS_BLOCK, RowGeometry};
@@ -341,7 +395,10 @@ mod x86 {
                     }
                     for (j, row) in s.iter().enumerate().take(np) {
                         for (i, v) in row.iter().enumerate().take(nb) {
-                            _mm512_storeu_si512(acc.as_mut_ptr().add((x + j) * wide + (b + i) * CO_BLOCK) as *mut _, *v);
+                            _mm512_storeu_si512(
+                                acc.as_mut_ptr().add((x + j) * wide + (b + i) * CO_BLOCK) as *mut _,
+                                *v,
+                            );
                         }
                     }
                 }
@@ -386,7 +443,10 @@ mod x86 {
                     }
                     for (j, row) in s.iter().enumerate().take(np) {
                         for (h, v) in row.iter().enumerate() {
-                            _mm256_storeu_si256(acc.as_mut_ptr().add((x + j) * wide + b * CO_BLOCK + 8 * h) as *mut _, *v);
+                            _mm256_storeu_si256(
+                                acc.as_mut_ptr().add((x + j) * wide + b * CO_BLOCK + 8 * h) as *mut _,
+                                *v,
+                            );
                         }
                     }
                 }
@@ -418,14 +478,15 @@ impl IntIgdn {
         IntIgdn { c, beta: beta.to_vec(), gamma: IntConv::new(gamma, &vec![0.0; c], c, c, 1, limit) }
     }
 
-    /// Applies the layer to plane `x` (border 0, exponent `f`); returns the outputs as a plane
-    /// with border `pad` for the next convolution, and their exponent.
+    /// Applies the layer to plane `x` (border 0, exponent `f`); returns the outputs as the input
+    /// plane of convolution `next` (its border, its input exponent: see
+    /// [`IntConv::input_exponent`]), and their exponent.
     ///
     /// The output exponent is chosen before any output is computed, from a bound: channel
     /// `i`'s products are at most `max|a_i| · isqrt_scaled(β_i + Σ_j γ_ij · max q_j)` (each
     /// factor at its largest), so one pass suffices; the bound is loose by the factor between
     /// that combination of per-channel maxima and the largest actual product.
-    fn forward(&self, x: &Plane, f: i32, pad: usize, path: IntPath) -> (Plane, i32) {
+    fn forward(&self, x: &Plane, f: i32, next: &IntConv, path: IntPath) -> (Plane, i32) {
         let c = self.c;
         assert_eq!((x.c, x.pad), (self.gamma.cin, 0), "plane layout of the inverse GDN's input");
         let cp = x.c;
@@ -439,7 +500,9 @@ impl IntIgdn {
         // Squares to 15 bits with one shift t ≥ 0 (exponent 2f − t), and t large enough that
         // every β_i at its sum's exponent E_i = 2f − t + g_i stays below 2^BETA_BITS.
         let mut t = (-headroom(max_a * max_a, ACT_MAX as u64)).max(0);
-        while (0..c).any(|i| scaled(self.beta[i] as f64, 2 * f - t + self.gamma.shifts[i]) >= (1u64 << BETA_BITS) as f64) {
+        while (0..c)
+            .any(|i| scaled(self.beta[i] as f64, 2 * f - t + self.gamma.shifts[i]) >= (1u64 << BETA_BITS) as f64)
+        {
             t += 1;
         }
         // Per row i: E_i made even by doubling the sum; β at E_i (exact: a power-of-two
@@ -465,9 +528,9 @@ impl IntIgdn {
                 max_per_channel[i] * isqrt_scaled(s)
             })
             .collect();
-        let f_out = shared_exponent(&bounds, &out_exp);
+        let f_out = next.input_exponent(&bounds, &out_exp);
         let shifts: Vec<i32> = out_exp.iter().map(|e| e - f_out).collect();
-        let mut next = Plane::zeroed(x.h, x.w, c.next_multiple_of(2), pad);
+        let mut next = Plane::zeroed(x.h, x.w, next.cin, next.k / 2);
         let (stride, start) = (next.row_stride(), next.at(0, 0));
         let wide = bound_sums.len();
         next.data[start..].par_chunks_mut(stride).take(x.h).enumerate().for_each_init(
@@ -559,7 +622,7 @@ unsafe fn igdn_row_avx512(r: RowArgs) {
 /// The largest exponent at which every channel fits ±32 767, channel `i` having largest
 /// magnitude `maxima[i]` at exponent `exps[i]`.
 fn shared_exponent(maxima: &[u64], exps: &[i32]) -> i32 {
-    maxima.iter().zip(exps).map(|(&m, &e)| e + headroom(m, ACT_MAX as u64)).min().unwrap_or(0).min(EXP_CAP)
+    maxima.iter().zip(exps).map(|(&m, &e)| e + headroom(m, ACT_MAX as u64)).min().unwrap_or(EXP_CAP).min(EXP_CAP)
 }
 
 /// `β` at its sum's scale stays below `2^BETA_BITS` (the squares' shift grows until it does),
@@ -615,15 +678,24 @@ impl IntSynthesis {
     /// Decodes latent `y` (`[m][hy][wy]`, already multiplied by the inverse gains) to 8-bit RGB,
     /// cropped to `tw × th`, interleaved.
     #[allow(clippy::too_many_arguments)]
-    pub fn decode_rgb8(&self, y: &[f32], m: usize, hy: usize, wy: usize, tw: usize, th: usize, path: IntPath) -> Vec<u8> {
+    pub fn decode_rgb8(
+        &self,
+        y: &[f32],
+        m: usize,
+        hy: usize,
+        wy: usize,
+        tw: usize,
+        th: usize,
+        path: IntPath,
+    ) -> Vec<u8> {
         // Input: one exponent from the exact largest magnitude (a power-of-two product of a
         // float is exact, so is the rounding).
+        let first = &self.convs[0];
         let max = y.iter().fold(0f32, |a, &v| a.max(v.abs())) as f64;
         let mut f = -EXP_CAP;
-        while f < EXP_CAP && scaled(max, f + 1) <= ACT_MAX as f64 {
+        while f < first.bias_cap && scaled(max, f + 1) <= first.input_limit as f64 {
             f += 1;
         }
-        let first = &self.convs[0];
         let mut x = Plane::zeroed(hy, wy, first.cin, first.k / 2);
         let plane = hy * wy;
         for p in 0..plane {
@@ -641,8 +713,7 @@ impl IntSynthesis {
             }
             let f_out = shared_exponent(&maxima, &exps);
             let up = depth_to_space(&sums, &exps, f_out, x.h, x.w, conv.cout / 4, self.igdns[i].gamma.cin);
-            let pad = self.convs[i + 1].k / 2;
-            (x, f) = self.igdns[i].forward(&up, f_out, pad, path);
+            (x, f) = self.igdns[i].forward(&up, f_out, &self.convs[i + 1], path);
         }
         unreachable!("the last stage returns")
     }

@@ -300,10 +300,7 @@ impl Model {
     pub fn synthesis_integer(&self) -> Result<crate::kernels::IntSynthesis> {
         let vars: HashMap<String, Var> = self.named_vars().into_iter().collect();
         let get = |name: &str| -> Result<(Vec<f32>, Vec<usize>)> {
-            let t = vars
-                .get(name)
-                .ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?
-                .as_tensor();
+            let t = vars.get(name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?.as_tensor();
             Ok((t.flatten_all()?.to_vec1::<f32>()?, t.dims().to_vec()))
         };
         let mut stages = Vec::new();
