@@ -132,9 +132,11 @@ fn to_act(v: i64) -> i16 {
     v.clamp(-ACT_MAX, ACT_MAX) as i16
 }
 
-/// `x · 2^e` for a float and an exponent, exactly (outside the normal range it saturates).
+/// `x · 2^e`, exactly (2^e is built from its bits; `|e|` stays far inside the normal range
+/// here, so the product is a power-of-two scaling of `x`, exact unless it overflows).
 fn scaled(x: f64, e: i32) -> f64 {
-    x * 2f64.powi(e)
+    debug_assert!((-1000..1000).contains(&e));
+    x * f64::from_bits(((e + 1023) as u64) << 52)
 }
 
 /// Output channels per packed weight block: one 512-bit vector of `i16` pairs.
@@ -281,9 +283,8 @@ impl IntConv {
     /// The bias of each output channel at exponent `f + s_c` (rows padded to a whole block).
     fn bias_at(&self, f: i32) -> Vec<i32> {
         let mut bias = vec![0i32; self.cout.div_ceil(CO_BLOCK) * CO_BLOCK];
-        for c in 0..self.cout {
-            bias[c] =
-                scaled(self.bias[c] as f64, f + self.shifts[c]).round().clamp(i32::MIN as f64, i32::MAX as f64) as i32;
+        for ((q, &b), &s) in bias.iter_mut().zip(&self.bias).zip(&self.shifts) {
+            *q = scaled(b as f64, f + s).round().clamp(i32::MIN as f64, i32::MAX as f64) as i32;
         }
         bias
     }
