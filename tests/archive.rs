@@ -212,3 +212,43 @@ fn target_psnr_holds_on_every_decoded_image() {
         assert!((p - e.psnr).abs() < 1e-9, "catalog PSNR {} differs from the decoded {p}", e.psnr);
     }
 }
+
+#[test]
+fn verify_compares_decoded_pixels_exactly_and_pack_records_missing_checksums() {
+    let (tmp, model, src) = setup(3);
+    let dest = tmp.path().join("archive");
+    assert!(kiln(&["pack", &s(&src), &s(&dest), "--model", &s(&model)]).status.success());
+    let cat = dest.join("catalog.sqlite");
+    let recorded: Vec<Option<String>> = {
+        let c = kiln::archive::catalog::Catalog::open_existing(&cat).unwrap();
+        c.all().unwrap().into_iter().map(|e| e.decoded_sha256).collect()
+    };
+    assert!(recorded.iter().all(|h| h.as_ref().is_some_and(|h| h.len() == 64)), "{recorded:?}");
+    // The decode of each container hashes to what the catalog recorded.
+    let codec = kiln::Codec::new(kiln::ModelFile::read(&model).unwrap()).unwrap();
+    let c = kiln::archive::catalog::Catalog::open_existing(&cat).unwrap();
+    for e in c.all().unwrap() {
+        let pic = codec.decode(&std::fs::read(dest.join(&e.container_path)).unwrap()).unwrap();
+        assert_eq!(Some(kiln::archive::pixel_hash(&pic)), e.decoded_sha256);
+    }
+    drop(c);
+    // A checksum that does not match the decode is named, whatever the PSNR.
+    let db = rusqlite::Connection::open(&cat).unwrap();
+    db.execute("UPDATE files SET decoded_sha256 = ?1 WHERE rel_path = 'a/img01.png'", ["0".repeat(64)]).unwrap();
+    let o = kiln(&["verify", &s(&dest)]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(1), "{err}");
+    assert!(err.contains("a/img01.png") && err.contains("decoded pixels differ"), "{err}");
+    // Rows without a checksum (packed before exact decoding) verify by PSNR, and a pack run
+    // records their checksums without re-encoding anything.
+    db.execute("UPDATE files SET decoded_sha256 = NULL", []).unwrap();
+    drop(db);
+    let o = kiln(&["verify", &s(&dest)]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("3 row(s) from before exact decoding"));
+    let o = kiln(&["pack", &s(&src), &s(&dest), "--model", &s(&model)]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success() && err.contains("checksum of 3 unchanged file(s)") && err.contains("packed 0"), "{err}");
+    let c = kiln::archive::catalog::Catalog::open_existing(&cat).unwrap();
+    assert_eq!(c.all().unwrap().into_iter().map(|e| e.decoded_sha256).collect::<Vec<_>>(), recorded);
+}

@@ -50,6 +50,10 @@ pub struct Entry {
     pub model_fingerprint: String,
     /// When it was packed (seconds since the Unix epoch).
     pub packed_at: i64,
+    /// SHA-256 (hex) of the container's decoded pixels (see [`super::pixel_hash`]): the same on
+    /// every CPU, so `verify` compares it exactly. `None` for rows packed before decoding was
+    /// exact (a later `pack` run records it).
+    pub decoded_sha256: Option<String>,
 }
 
 /// An open catalog.
@@ -111,7 +115,7 @@ pub struct ModelRow {
 }
 
 const COLUMNS: &str = "rel_path, source_size, source_mtime_ns, pixel_sha256, container_path, container_size, png_size, \
-                       width, height, channels, quality, bpp, psnr, ms_ssim, model_fingerprint, packed_at";
+                       width, height, channels, quality, bpp, psnr, ms_ssim, model_fingerprint, packed_at, decoded_sha256";
 
 impl Catalog {
     /// Opens (creating if needed) the catalog at `path`.
@@ -124,7 +128,7 @@ impl Catalog {
                pixel_sha256 TEXT NOT NULL, container_path TEXT NOT NULL, container_size INTEGER NOT NULL,
                png_size INTEGER NOT NULL, width INTEGER NOT NULL, height INTEGER NOT NULL, channels INTEGER NOT NULL,
                quality REAL NOT NULL, bpp REAL NOT NULL, psnr REAL NOT NULL, ms_ssim REAL,
-               model_fingerprint TEXT NOT NULL, packed_at INTEGER NOT NULL);
+               model_fingerprint TEXT NOT NULL, packed_at INTEGER NOT NULL, decoded_sha256 TEXT);
              CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
              CREATE TABLE IF NOT EXISTS skipped (
                rel_path TEXT PRIMARY KEY, reason TEXT NOT NULL, is_error INTEGER NOT NULL);
@@ -134,7 +138,23 @@ impl Catalog {
         .map_err(db(path))?;
         let mut cat = Catalog { conn, path: path.to_path_buf() };
         cat.allow_undefined_ms_ssim()?;
+        cat.add_decoded_checksum()?;
         Ok(cat)
+    }
+
+    /// Catalogs written before decoding was exact have no `decoded_sha256` column: it is added
+    /// (empty for their rows).
+    fn add_decoded_checksum(&mut self) -> Result<()> {
+        let present: i64 = self
+            .conn
+            .query_row("SELECT COUNT(*) FROM pragma_table_info('files') WHERE name = 'decoded_sha256'", [], |r| {
+                r.get(0)
+            })
+            .map_err(db(&self.path))?;
+        if present == 0 {
+            self.conn.execute_batch("ALTER TABLE files ADD COLUMN decoded_sha256 TEXT").map_err(db(&self.path))?;
+        }
+        Ok(())
     }
 
     /// Catalogs written before MS-SSIM could be undefined declared it `NOT NULL`; SQLite cannot
@@ -251,7 +271,9 @@ impl Catalog {
     pub fn put(&mut self, e: &Entry) -> Result<()> {
         let tx = self.conn.transaction().map_err(db(&self.path))?;
         tx.execute(
-            &format!("INSERT OR REPLACE INTO files ({COLUMNS}) VALUES (?1,?2,?3,?4,?5,?6,?7,?8,?9,?10,?11,?12,?13,?14,?15,?16)"),
+            &format!(
+                "INSERT OR REPLACE INTO files ({COLUMNS}) VALUES (?1,?2,?3,?4,?5,?6,?7,?8,?9,?10,?11,?12,?13,?14,?15,?16,?17)"
+            ),
             params![
                 e.rel_path,
                 e.source_size as i64,
@@ -268,7 +290,8 @@ impl Catalog {
                 e.psnr,
                 e.ms_ssim,
                 e.model_fingerprint,
-                e.packed_at
+                e.packed_at,
+                e.decoded_sha256
             ],
         )
         .map_err(db(&self.path))?;
@@ -310,5 +333,6 @@ fn row_to_entry(r: &rusqlite::Row) -> rusqlite::Result<Entry> {
         ms_ssim: r.get(13)?,
         model_fingerprint: r.get(14)?,
         packed_at: r.get(15)?,
+        decoded_sha256: r.get(16)?,
     })
 }

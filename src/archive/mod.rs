@@ -130,6 +130,8 @@ pub struct PackReport {
     pub failed: Vec<(String, String)>,
     /// Rows whose source was unchanged but whose container failed its checks, re-encoded.
     pub repaired: Vec<String>,
+    /// Unchanged rows that lacked the checksum of their decoded pixels and now have it.
+    pub fixity_recorded: usize,
     /// Entries under the source that are not images to pack: `(path, reason, is_error)`.
     pub skipped: Vec<(String, String, bool)>,
 }
@@ -235,6 +237,8 @@ pub fn encode_for_target(codec: &Codec, pic: &Picture, target: Target) -> Result
 enum Outcome {
     Packed(Box<Entry>, bool),
     Unchanged,
+    /// Unchanged, its row given the decoded-pixel checksum it lacked.
+    FixityRecorded(Box<Entry>),
     Failed(String, String),
     /// The storage under the archive failed: every worker stops.
     Fatal(KilnError),
@@ -253,11 +257,18 @@ fn first_line(e: &KilnError) -> String {
 /// A catalog row, its container's bytes, and whether it repairs a damaged container.
 type Encoded = (Entry, Vec<u8>, bool);
 
+/// What a pack run does with one source file.
+enum Step {
+    Unchanged,
+    /// Unchanged; its row gains the checksum of its container's decoded pixels.
+    RecordFixity(Entry),
+    Encoded(Encoded),
+}
+
 fn pack_one(codec: &Codec, o: &PackOptions, path: &Path, rel: &str, existing: Option<Entry>) -> Outcome {
     let crel = container_rel(rel);
     let cpath = o.dest.join(&crel);
-    // `Ok(None)`: unchanged; `Ok(Some((row, container, repaired)))`: encoded.
-    let encode = || -> Result<Option<Encoded>> {
+    let encode = || -> Result<Step> {
         let meta = std::fs::metadata(path).map_err(|e| KilnError::io(path, e))?;
         let pic = Picture::open(path, AlphaPolicy::Refuse)?;
         let hash = pixel_hash(&pic);
@@ -271,7 +282,11 @@ fn pack_one(codec: &Codec, o: &PackOptions, path: &Path, rel: &str, existing: Op
             && !matches!(o.target, Target::Quality(q) if (e.quality - q as f64).abs() > 1e-6)
         {
             if container_intact(&cpath, e.container_size) {
-                return Ok(None);
+                if e.decoded_sha256.is_some() {
+                    return Ok(Step::Unchanged);
+                }
+                let decoded = codec.decode(&crate::image_io::read_regular(&cpath)?)?;
+                return Ok(Step::RecordFixity(Entry { decoded_sha256: Some(pixel_hash(&decoded)), ..e }));
             }
             repaired = true;
         }
@@ -294,12 +309,14 @@ fn pack_one(codec: &Codec, o: &PackOptions, path: &Path, rel: &str, existing: Op
             ms_ssim: ms_ssim_if_defined(&pic, &dec),
             model_fingerprint: fp,
             packed_at: now(),
+            decoded_sha256: Some(pixel_hash(&dec)),
         };
-        Ok(Some((entry, bytes, repaired)))
+        Ok(Step::Encoded((entry, bytes, repaired)))
     };
     let (entry, bytes, repaired) = match encode() {
-        Ok(Some(x)) => x,
-        Ok(None) => return Outcome::Unchanged,
+        Ok(Step::Encoded(x)) => x,
+        Ok(Step::Unchanged) => return Outcome::Unchanged,
+        Ok(Step::RecordFixity(e)) => return Outcome::FixityRecorded(Box::new(e)),
         Err(e) => return Outcome::Failed(rel.to_string(), first_line(&e)),
     };
     let write = || -> Result<()> {
@@ -438,6 +455,10 @@ pub fn pack(codec: &Codec, o: &PackOptions) -> Result<PackReport> {
                     report.unchanged += 1;
                     Ok(())
                 }
+                Outcome::FixityRecorded(e) => cat.put(&e).map(|()| {
+                    report.unchanged += 1;
+                    report.fixity_recorded += 1;
+                }),
                 Outcome::Failed(rel, why) => {
                     report.failed.push((rel, why));
                     Ok(())
@@ -550,11 +571,15 @@ pub struct VerifyReport {
     pub models: Vec<ModelUse>,
     /// Model files met during the lookups that were not what their place promised.
     pub model_problems: Vec<String>,
+    /// Rows checked exactly against their recorded decoded-pixel checksum.
+    pub exact: usize,
 }
 
 /// Checks every model the archive carries against its fingerprint, then decodes every
-/// container in the catalog with the model it names, checks its checksums and, where the source
-/// is still present and unchanged, that the decoded PSNR matches the recorded one (±0.01 dB).
+/// container in the catalog with the model it names, checks its checksums, that its decoded
+/// pixels are exactly those recorded at packing (`decoded_sha256`; rows packed before decoding
+/// was exact have none, and where their source is present their PSNR is checked within
+/// 0.01 dB instead), and that the source, where still present, is unchanged.
 /// Goes on past every damaged file. Models are looked up in `store` with the archive's own
 /// models folder after its explicit model (see [`crate::model::store`]); a damaged or missing
 /// carried model is a problem (named `models/<fingerprint>.safetensors`) even where another
@@ -598,18 +623,30 @@ pub fn verify(store: &ModelStore, dest: &Path) -> Result<VerifyReport> {
                     Ok(d) => d,
                     Err(why) => return fail(why),
                 };
+                if let Some(recorded) = &e.decoded_sha256 {
+                    let now = pixel_hash(&dec);
+                    if &now != recorded {
+                        return fail(format!(
+                            "decoded pixels differ from those recorded at packing (SHA-256 {}…, recorded {}…)",
+                            &now[..16],
+                            recorded.get(..16).unwrap_or(recorded)
+                        ));
+                    }
+                }
                 let source = src_root.as_ref().zip(safe_relative(&e.rel_path).ok()).map(|(r, rel)| r.join(rel));
                 if let Some(sp) = source.filter(|p| p.is_file()) {
                     match Picture::open(&sp, AlphaPolicy::Refuse) {
                         Ok(pic) if pixel_hash(&pic) != e.pixel_sha256 => {
                             return fail("source pixels changed since packing".into());
                         }
-                        Ok(pic) => {
+                        // Rows from before exact decoding: the PSNR recorded then, within 0.01 dB.
+                        Ok(pic) if e.decoded_sha256.is_none() => {
                             let p = psnr(&pic.data, &dec.data);
                             if (p - e.psnr).abs() > 0.01 && !(p.is_infinite() && e.psnr.is_infinite()) {
                                 return fail(format!("decoded PSNR {p:.3} dB, catalog says {:.3} dB", e.psnr));
                             }
                         }
+                        Ok(_) => {}
                         Err(err) => return fail(format!("source unreadable: {}", first_line(&err))),
                     }
                 }
@@ -619,7 +656,8 @@ pub fn verify(store: &ModelStore, dest: &Path) -> Result<VerifyReport> {
     );
     let skipped = cat.skipped()?.into_iter().map(|r| (r.rel_path, r.reason, r.error)).collect();
     let model_problems = decoders.store().problems();
-    Ok(VerifyReport { files: entries.len(), problems, skipped, models, model_problems })
+    let exact = entries.iter().filter(|e| e.decoded_sha256.is_some()).count();
+    Ok(VerifyReport { files: entries.len(), problems, skipped, models, model_problems, exact })
 }
 
 /// What [`unpack`] did.

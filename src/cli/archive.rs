@@ -151,6 +151,12 @@ pub fn pack(a: PackArgs) -> anyhow::Result<()> {
         eprintln!("  failed: {f}: {why}");
     }
     let errors = r.skipped.iter().filter(|s| s.2).count() + r.failed.len();
+    if r.fixity_recorded > 0 {
+        eprintln!(
+            "  recorded the decoded-pixel checksum of {} unchanged file(s) packed before decoding was exact",
+            r.fixity_recorded
+        );
+    }
     eprintln!(
         "packed {}, unchanged {}, repaired {}, failed {}, skipped {}; catalog {}",
         r.packed,
@@ -184,7 +190,18 @@ pub fn verify(a: ArchiveArgs) -> anyhow::Result<()> {
     if !r.problems.is_empty() {
         anyhow::bail!("{} problem(s) in an archive of {} file(s) (listed above)", r.problems.len(), r.files);
     }
-    eprintln!("verified {} file(s): all containers decode and match the catalog", r.files);
+    let legacy = r.files - r.exact;
+    eprintln!(
+        "verified {} file(s): every container decodes to exactly the pixels recorded at packing{}",
+        r.files,
+        if legacy > 0 {
+            format!(
+                " ({legacy} row(s) from before exact decoding have no recorded checksum: checked by PSNR where the source is present; `kiln pack` again records them)"
+            )
+        } else {
+            String::new()
+        }
+    );
     Ok(())
 }
 
