@@ -26,8 +26,9 @@
 //!   requantized to 15 bits with one tile-wide shift `t`; `γ` per row to magnitudes at most
 //!   `⌊(2³¹ − 1) / (c · 32 767)⌋` (1023 for 64 channels), so that a row's sum fits `i32` and
 //!   runs on the convolution kernel; `β_i` rounded at the sum's scale (an exact power-of-two
-//!   product in `f64`), `t` grown until every `β_i` there is below 2⁴⁶; the sum's exponent made
-//!   even by doubling the sum; the square root exact ([`isqrt_scaled`], with
+//!   product in `f64`); where `β_i` would reach 2³⁴ there, the sum's exponent is lowered by an
+//!   even number of bits (the sum shifted right: `β` dominates it); the exponent made even by
+//!   doubling the sum; the square root exact ([`isqrt_scaled`], with
 //!   [`SQRT_EXTRA_BITS`] more bits); the product with `a_i` in `i64`. The output exponent comes
 //!   from a bound (each factor at its channel's largest), so one pass suffices.
 //! - **Output**: the last layer's sums become 8-bit samples as `clamp(round(acc · 255 · 2^−e))`
@@ -55,22 +56,39 @@ const EXP_CAP: i32 = 40;
 pub enum IntPath {
     /// The widest vector instructions this CPU has (AVX-512BW, AVX2), chosen at run time.
     Native,
+    /// AVX2 at most, even where AVX-512 is present (`KILN_SIMD=avx2`: to measure and test the
+    /// AVX2 kernels on an AVX-512 machine).
+    Avx2,
     /// Code compiled for the baseline target only (`KILN_SIMD=off`).
     Portable,
 }
 
 impl IntPath {
-    /// `Portable` when the environment variable `KILN_SIMD` is `off`, else `Native`.
+    /// From the environment variable `KILN_SIMD`: `off` → `Portable`, `avx2` → `Avx2`,
+    /// anything else or unset → `Native`.
     pub fn from_env() -> Self {
-        if std::env::var("KILN_SIMD").is_ok_and(|v| v == "off") { IntPath::Portable } else { IntPath::Native }
+        match std::env::var("KILN_SIMD").as_deref() {
+            Ok("off") => IntPath::Portable,
+            Ok("avx2") => IntPath::Avx2,
+            _ => IntPath::Native,
+        }
     }
 
-    /// The instruction set the sums run on with this choice, in words.
-    pub fn describe(self) -> &'static str {
+    /// The instruction set the sums run on with this choice on this CPU.
+    fn level(self) -> Isa {
         match (self, isa()) {
-            (IntPath::Portable, _) | (_, Isa::Baseline) => "portable",
-            (_, Isa::Avx2) => "AVX2",
-            (_, Isa::Avx512) => "AVX-512BW",
+            (IntPath::Portable, _) | (_, Isa::Baseline) => Isa::Baseline,
+            (IntPath::Avx2, _) | (_, Isa::Avx2) => Isa::Avx2,
+            (IntPath::Native, Isa::Avx512) => Isa::Avx512,
+        }
+    }
+
+    /// The instruction set the sums run on with this choice on this CPU, in words.
+    pub fn describe(self) -> &'static str {
+        match self.level() {
+            Isa::Baseline => "portable",
+            Isa::Avx2 => "AVX2",
+            Isa::Avx512 => "AVX-512BW",
         }
     }
 }
@@ -298,13 +316,13 @@ impl IntConv {
             k: self.k,
             c: p.c,
         };
-        match (path, isa()) {
+        match path.level() {
             #[cfg(target_arch = "x86_64")]
-            // SAFETY: the CPU has AVX-512F and AVX-512BW (checked by `isa`).
-            (IntPath::Native, Isa::Avx512) => unsafe { x86::row_avx512(&self.packed, &p.data, &g, bias, acc) },
+            // SAFETY: the CPU has AVX-512F, BW and DQ (checked by `isa`).
+            Isa::Avx512 => unsafe { x86::row_avx512(&self.packed, &p.data, &g, bias, acc) },
             #[cfg(target_arch = "x86_64")]
             // SAFETY: the CPU has AVX2 (checked by `isa`).
-            (IntPath::Native, Isa::Avx2) => unsafe { x86::row_avx2(&self.packed, &p.data, &g, bias, acc) },
+            Isa::Avx2 => unsafe { x86::row_avx2(&self.packed, &p.data, &g, bias, acc) },
             _ => row_portable(&self.packed, &p.data, &g, bias, acc),
         }
     }
@@ -498,23 +516,29 @@ impl IntIgdn {
             m
         });
         let max_a = max_per_channel.iter().copied().max().unwrap_or(0);
-        // Squares to 15 bits with one shift t ≥ 0 (exponent 2f − t), and t large enough that
-        // every β_i at its sum's exponent E_i = 2f − t + g_i stays below 2^BETA_BITS.
-        let mut t = (-headroom(max_a * max_a, ACT_MAX as u64)).max(0);
-        while (0..c)
-            .any(|i| scaled(self.beta[i] as f64, 2 * f - t + self.gamma.shifts[i]) >= (1u64 << BETA_BITS) as f64)
-        {
-            t += 1;
-        }
-        // Per row i: E_i made even by doubling the sum; β at E_i (exact: a power-of-two
-        // product, then a rounding).
-        let mut rows = RowTerms { beta_q: Vec::with_capacity(c), doubling: Vec::with_capacity(c) };
+        // Squares to 15 bits with one shift t ≥ 0: exponent 2f − t.
+        let t = (-headroom(max_a * max_a, ACT_MAX as u64)).max(0);
+        // Per row i, the sum Σ_j γ_ij q_j (below 2³¹) is at exponent E_i = 2f − t + g_i. Where
+        // β_i there is 2^BETA_BITS or more, sum and β are taken at E_i − n_i instead (n_i the
+        // smallest even number that brings β below it): β then dominates the sum, whose low
+        // n_i bits go. The exponent is made even by doubling.
+        let mut rows = RowTerms {
+            beta_q: Vec::with_capacity(c),
+            sum_shift: Vec::with_capacity(c),
+            doubling: Vec::with_capacity(c),
+        };
         let mut out_exp = Vec::with_capacity(c);
         for i in 0..c {
             let e = 2 * f - t + self.gamma.shifts[i];
+            let mut n = 0;
+            while scaled(self.beta[i] as f64, e - n).round() >= (1u64 << BETA_BITS) as f64 {
+                n += 2;
+            }
+            let e = e - n;
             let doubled = e % 2 != 0;
             let e_even = if doubled { e + 1 } else { e };
             rows.beta_q.push(scaled(self.beta[i] as f64, e).round() as i64);
+            rows.sum_shift.push(n as u64);
             rows.doubling.push(doubled as u32);
             out_exp.push(f + e_even / 2 + SQRT_EXTRA_BITS as i32);
         }
@@ -525,12 +549,15 @@ impl IntIgdn {
         self.gamma.row(&q_plane, 0, &vec![0i32; bound_sums.len()], &mut bound_sums, IntPath::Portable);
         let bounds: Vec<u64> = (0..c)
             .map(|i| {
-                let s = ((bound_sums[i] as i64 + rows.beta_q[i]) << rows.doubling[i]) as u64;
+                let shifted = (bound_sums[i] as i64).checked_shr(rows.sum_shift[i] as u32).unwrap_or(0);
+                let s = (shifted + rows.beta_q[i]) << rows.doubling[i];
+                let s = s as u64;
                 max_per_channel[i] * isqrt_scaled(s)
             })
             .collect();
         let f_out = next.input_exponent(&bounds, &out_exp);
         let shifts: Vec<i32> = out_exp.iter().map(|e| e - f_out).collect();
+        let rq = Requant::new(&shifts);
         let mut next = Plane::zeroed(x.h, x.w, next.cin, next.k / 2);
         let (stride, start) = (next.row_stride(), next.at(0, 0));
         let wide = bound_sums.len();
@@ -540,14 +567,14 @@ impl IntIgdn {
                 let src = &x.data[y * x.w * cp..(y + 1) * x.w * cp];
                 squares(src, t, &mut sq.data);
                 self.gamma.row(sq, 0, zero, sums, path);
-                let args = RowArgs { sums, wide, rows: &rows, act: src, cp, shifts: &shifts, out: dst };
-                match (path, isa()) {
+                let args = RowArgs { sums, wide, rows: &rows, act: src, cp, rq: &rq, out: dst };
+                match path.level() {
                     #[cfg(target_arch = "x86_64")]
                     // SAFETY: the CPU has AVX-512F, BW and DQ (checked by `isa`).
-                    (IntPath::Native, Isa::Avx512) => unsafe { igdn_row_avx512(args) },
+                    Isa::Avx512 => unsafe { x86_igdn::row_avx512(args) },
                     #[cfg(target_arch = "x86_64")]
                     // SAFETY: the CPU has AVX2 (checked by `isa`).
-                    (IntPath::Native, Isa::Avx2) => unsafe { igdn_row_avx2(args) },
+                    Isa::Avx2 => unsafe { x86_igdn::row_avx2(args) },
                     _ => igdn_row(args),
                 }
             },
@@ -556,25 +583,50 @@ impl IntIgdn {
     }
 }
 
-/// `q = round_shift(a², t)` for every activation (at most 32 767 by the choice of `t`).
+/// `q = round_shift(a², t)` for every activation (at most 32 767 by the choice of `t`; `t` can
+/// exceed 31 where `β` dominates, so the general case is computed in `i64`).
 fn squares(a: &[i16], t: i32, q: &mut [i16]) {
     if t == 0 {
         for (q, &v) in q.iter_mut().zip(a) {
             *q = (v as i32 * v as i32) as i16;
         }
-    } else {
+    } else if t < 31 {
         let half = 1i32 << (t - 1);
         for (q, &v) in q.iter_mut().zip(a) {
             *q = ((v as i32 * v as i32 + half) >> t) as i16;
         }
+    } else {
+        for (q, &v) in q.iter_mut().zip(a) {
+            *q = round_shift(v as i64 * v as i64, t) as i16;
+        }
     }
 }
 
-/// Per output channel of an inverse GDN: `β_i` at its sum's exponent, and 1 where the sum is
-/// doubled to make that exponent even.
+/// Per output channel of an inverse GDN: `β_i` at its sum's exponent, the right shift of the
+/// `γ` sum to that exponent, and 1 where the sum is doubled to make the exponent even.
 struct RowTerms {
     beta_q: Vec<i64>,
+    sum_shift: Vec<u64>,
     doubling: Vec<u32>,
+}
+
+/// Per output channel: the requantization `round_shift(p, e)` to the output exponent as a
+/// right shift with rounding and a left shift (one of them zero): `((p + half) >> right) << left`.
+struct Requant {
+    half: Vec<i64>,
+    right: Vec<u64>,
+    left: Vec<u64>,
+}
+
+impl Requant {
+    fn new(shifts: &[i32]) -> Self {
+        let right: Vec<u64> = shifts.iter().map(|&e| e.clamp(0, 62) as u64).collect();
+        Requant {
+            half: right.iter().map(|&r| if r > 0 { 1i64 << (r - 1) } else { 0 }).collect(),
+            left: shifts.iter().map(|&e| (-e).clamp(0, 62) as u64).collect(),
+            right,
+        }
+    }
 }
 
 /// One row of an inverse GDN after its `γ` sums.
@@ -586,38 +638,151 @@ struct RowArgs<'a> {
     /// `[w][cp]` input activations.
     act: &'a [i16],
     cp: usize,
-    /// Per channel: the requantization shift to the output exponent.
-    shifts: &'a [i32],
+    /// Per channel: the requantization to the output exponent.
+    rq: &'a Requant,
     /// `[w][cp]` output activations (in a padded plane's row).
     out: &'a mut [i16],
 }
 
-/// `out[x][i] = clamp(round_shift(a · isqrt_scaled((sum + β_i) << doubling_i), shift_i))`.
-/// The sum is below 2⁴⁸ (β below 2^BETA_BITS, the γ sum below 2³¹), so nothing overflows.
+/// One output of an inverse GDN: `clamp(((a · isqrt_scaled(s) + half) >> right) << left)` with
+/// `s = ((sum >> sum_shift) + β) << doubling` (below 2³⁶: β below 2^BETA_BITS, the γ sum below
+/// 2³¹). The left shift wraps like the vector code's; it never overflows, the exponent having
+/// come from a bound on the products.
 #[inline(always)]
-fn igdn_row(r: RowArgs) {
+fn igdn_one(sum: i32, rows: &RowTerms, a: i16, rq: &Requant, i: usize) -> i16 {
+    // A shift by 64 or more gives 0, as the vector shifts do (the sum is not negative).
+    let shifted = (sum as i64).checked_shr(rows.sum_shift[i] as u32).unwrap_or(0);
+    let s = ((shifted + rows.beta_q[i]) << rows.doubling[i]) as u64;
+    let p = a as i64 * isqrt_scaled(s) as i64;
+    (((p + rq.half[i]) >> rq.right[i]).wrapping_shl(rq.left[i] as u32)).clamp(-ACT_MAX, ACT_MAX) as i16
+}
+
+/// `out[x][i]` = [`igdn_one`] of every position and channel: the reference for the vector code.
+fn igdn_row(mut r: RowArgs) {
+    for x in 0..r.act.len() / r.cp {
+        igdn_tail(&mut r, x, 0);
+    }
+}
+
+/// [`igdn_one`] for channels `from..c` of position `x`.
+#[inline(always)]
+fn igdn_tail(r: &mut RowArgs, x: usize, from: usize) {
     let c = r.rows.beta_q.len();
-    let w = r.act.len() / r.cp;
-    for x in 0..w {
-        let (s, a) = (&r.sums[x * r.wide..][..c], &r.act[x * r.cp..][..c]);
-        let o = &mut r.out[x * r.cp..][..c];
-        for i in 0..c {
-            let sum = ((s[i] as i64 + r.rows.beta_q[i]) << r.rows.doubling[i]) as u64;
-            o[i] = to_act(round_shift(a[i] as i64 * isqrt_scaled(sum) as i64, r.shifts[i]));
-        }
+    let (s, a) = (&r.sums[x * r.wide..][..c], &r.act[x * r.cp..][..c]);
+    let o = &mut r.out[x * r.cp..][..c];
+    for i in from..c {
+        o[i] = igdn_one(s[i], r.rows, a[i], r.rq, i);
     }
 }
 
 #[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2")]
-unsafe fn igdn_row_avx2(r: RowArgs) {
-    igdn_row(r)
-}
+mod x86_igdn {
+    //! [`super::igdn_one`] on eight (AVX-512) or four (AVX2) channels at once, with the same
+    //! integer and IEEE operations, so the same results.
+    use std::arch::x86_64::*;
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f,avx512bw,avx512dq")]
-unsafe fn igdn_row_avx512(r: RowArgs) {
-    igdn_row(r)
+    use super::{ACT_MAX, RowArgs, SQRT_EXTRA_BITS, igdn_tail};
+
+    /// # Safety
+    /// The CPU must have AVX-512F and AVX-512DQ; `r` must describe valid rows.
+    #[target_feature(enable = "avx512f,avx512bw,avx512dq")]
+    pub unsafe fn row_avx512(mut r: RowArgs) {
+        let c = r.rows.beta_q.len();
+        let w = r.act.len() / r.cp;
+        let vec_c = c / 8 * 8;
+        // SAFETY: every load and store is inside `sums`, `act`, `out` and the per-channel
+        // vectors (channels below `vec_c` of positions below `w`).
+        unsafe {
+            let one = _mm512_set1_epi64(1);
+            let max_r = _mm512_set1_epi64(u32::MAX as i64);
+            let (hi, lo) = (_mm512_set1_epi64(ACT_MAX), _mm512_set1_epi64(-ACT_MAX));
+            for x in 0..w {
+                for i in (0..vec_c).step_by(8) {
+                    let sum =
+                        _mm512_cvtepi32_epi64(_mm256_loadu_si256(r.sums.as_ptr().add(x * r.wide + i) as *const _));
+                    let beta = _mm512_loadu_si512(r.rows.beta_q.as_ptr().add(i) as *const _);
+                    let dbl = _mm512_cvtepu32_epi64(_mm256_loadu_si256(r.rows.doubling.as_ptr().add(i) as *const _));
+                    let n = _mm512_loadu_si512(r.rows.sum_shift.as_ptr().add(i) as *const _);
+                    let s = _mm512_sllv_epi64(_mm512_add_epi64(_mm512_srlv_epi64(sum, n), beta), dbl);
+                    let v = _mm512_slli_epi64::<{ 2 * SQRT_EXTRA_BITS }>(s);
+                    let mut q = _mm512_cvttpd_epu64(_mm512_sqrt_pd(_mm512_cvtepu64_pd(v)));
+                    q = _mm512_min_epu64(q, max_r);
+                    let too_big = _mm512_cmpgt_epu64_mask(_mm512_mullo_epi64(q, q), v);
+                    q = _mm512_mask_sub_epi64(q, too_big, q, one);
+                    let q1 = _mm512_add_epi64(q, one);
+                    let fits =
+                        _mm512_cmple_epu64_mask(_mm512_mullo_epi64(q1, q1), v) & _mm512_cmplt_epu64_mask(q, max_r);
+                    q = _mm512_mask_add_epi64(q, fits, q, one);
+                    let a = _mm512_cvtepi16_epi64(_mm_loadu_si128(r.act.as_ptr().add(x * r.cp + i) as *const _));
+                    let p = _mm512_mullo_epi64(a, q);
+                    let half = _mm512_loadu_si512(r.rq.half.as_ptr().add(i) as *const _);
+                    let right = _mm512_loadu_si512(r.rq.right.as_ptr().add(i) as *const _);
+                    let left = _mm512_loadu_si512(r.rq.left.as_ptr().add(i) as *const _);
+                    let y = _mm512_sllv_epi64(_mm512_srav_epi64(_mm512_add_epi64(p, half), right), left);
+                    let y = _mm512_max_epi64(_mm512_min_epi64(y, hi), lo);
+                    _mm_storeu_si128(r.out.as_mut_ptr().add(x * r.cp + i) as *mut _, _mm512_cvtepi64_epi16(y));
+                }
+                igdn_tail(&mut r, x, vec_c);
+            }
+        }
+    }
+
+    /// # Safety
+    /// The CPU must have AVX2; `r` must describe valid rows.
+    #[target_feature(enable = "avx2")]
+    pub unsafe fn row_avx2(mut r: RowArgs) {
+        let c = r.rows.beta_q.len();
+        let w = r.act.len() / r.cp;
+        let vec_c = c / 4 * 4;
+        // SAFETY: as in `row_avx512`, four channels at a time.
+        unsafe {
+            let one = _mm256_set1_epi64x(1);
+            let zero = _mm256_setzero_si256();
+            // 2⁵²: adding it to a value below 2⁵² puts that value in the mantissa, exactly.
+            let magic_bits = _mm256_set1_epi64x(0x4330_0000_0000_0000);
+            let magic = _mm256_castsi256_pd(magic_bits);
+            let (hi, lo) = (_mm256_set1_epi64x(ACT_MAX), _mm256_set1_epi64x(-ACT_MAX));
+            let mut tmp = [0i64; 4];
+            for x in 0..w {
+                for i in (0..vec_c).step_by(4) {
+                    let sum = _mm256_cvtepi32_epi64(_mm_loadu_si128(r.sums.as_ptr().add(x * r.wide + i) as *const _));
+                    let beta = _mm256_loadu_si256(r.rows.beta_q.as_ptr().add(i) as *const _);
+                    let dbl = _mm256_cvtepu32_epi64(_mm_loadu_si128(r.rows.doubling.as_ptr().add(i) as *const _));
+                    let n = _mm256_loadu_si256(r.rows.sum_shift.as_ptr().add(i) as *const _);
+                    let s = _mm256_sllv_epi64(_mm256_add_epi64(_mm256_srlv_epi64(sum, n), beta), dbl);
+                    let v = _mm256_slli_epi64::<{ 2 * SQRT_EXTRA_BITS as i32 }>(s);
+                    // v < 2⁵²: exact as a double through the 2⁵² trick; the root is below 2²⁶,
+                    // truncated, then back to an integer the same way.
+                    let vf = _mm256_sub_pd(_mm256_castsi256_pd(_mm256_or_si256(v, magic_bits)), magic);
+                    let rf = _mm256_round_pd::<{ _MM_FROUND_TO_ZERO | _MM_FROUND_NO_EXC }>(_mm256_sqrt_pd(vf));
+                    let mut q = _mm256_xor_si256(_mm256_castpd_si256(_mm256_add_pd(rf, magic)), magic_bits);
+                    // Corrections (values below 2⁶³: signed compares are exact).
+                    let too_big = _mm256_cmpgt_epi64(_mm256_mul_epu32(q, q), v);
+                    q = _mm256_add_epi64(q, too_big); // adds −1 where too big
+                    let q1 = _mm256_add_epi64(q, one);
+                    let over = _mm256_cmpgt_epi64(_mm256_mul_epu32(q1, q1), v);
+                    q = _mm256_add_epi64(q, _mm256_andnot_si256(over, one));
+                    let a = _mm256_cvtepi16_epi64(_mm_loadl_epi64(r.act.as_ptr().add(x * r.cp + i) as *const _));
+                    let p = _mm256_mul_epi32(a, q);
+                    let half = _mm256_loadu_si256(r.rq.half.as_ptr().add(i) as *const _);
+                    let right = _mm256_loadu_si256(r.rq.right.as_ptr().add(i) as *const _);
+                    let left = _mm256_loadu_si256(r.rq.left.as_ptr().add(i) as *const _);
+                    // Arithmetic right shift from a logical one and the sign.
+                    let t = _mm256_add_epi64(p, half);
+                    let sign = _mm256_cmpgt_epi64(zero, t);
+                    let fill = _mm256_sllv_epi64(sign, _mm256_sub_epi64(_mm256_set1_epi64x(64), right));
+                    let y = _mm256_sllv_epi64(_mm256_or_si256(_mm256_srlv_epi64(t, right), fill), left);
+                    let y = _mm256_blendv_epi8(y, hi, _mm256_cmpgt_epi64(y, hi));
+                    let y = _mm256_blendv_epi8(y, lo, _mm256_cmpgt_epi64(lo, y));
+                    _mm256_storeu_si256(tmp.as_mut_ptr() as *mut _, y);
+                    for (k, v) in tmp.iter().enumerate() {
+                        *r.out.get_unchecked_mut(x * r.cp + i + k) = *v as i16;
+                    }
+                }
+                igdn_tail(&mut r, x, vec_c);
+            }
+        }
+    }
 }
 
 /// The largest exponent at which every channel fits ±32 767, channel `i` having largest
@@ -626,13 +791,16 @@ fn shared_exponent(maxima: &[u64], exps: &[i32]) -> i32 {
     maxima.iter().zip(exps).map(|(&m, &e)| e + headroom(m, ACT_MAX as u64)).min().unwrap_or(EXP_CAP).min(EXP_CAP)
 }
 
-/// `β` at its sum's scale stays below `2^BETA_BITS` (the squares' shift grows until it does),
-/// so every inverse-GDN sum, doubled, is below 2⁴⁸ and `sum · 2^(2·SQRT_EXTRA_BITS)` below 2⁶⁴.
-const BETA_BITS: u32 = 46;
+/// `β` at its sum's scale stays below `2^BETA_BITS` (the sum's exponent is lowered until it
+/// does), so every inverse-GDN sum, doubled, is below 2³⁶ and `sum · 2^(2·SQRT_EXTRA_BITS)`
+/// below 2⁵².
+const BETA_BITS: u32 = 34;
 
-/// `⌊sqrt(s · 2^(2·SQRT_EXTRA_BITS))⌋` for `s < 2⁴⁸`, exactly: the float square root of
-/// `v = s · 2^(2·SQRT_EXTRA_BITS)` is within one of the result (relative error below 2⁻⁵²,
-/// result below 2³²), and one integer step each way corrects it. No branches, so it vectorizes.
+/// `⌊sqrt(s · 2^(2·SQRT_EXTRA_BITS))⌋` for `s < 2³⁶`, exactly: `v = s · 2^(2·SQRT_EXTRA_BITS)`
+/// is below 2⁵², so exact as a double; its correctly rounded square root truncated is the
+/// integer square root (for `v < 2⁵²` rounding cannot reach the next integer), and one integer
+/// step each way is kept as a guard. No branches, so it vectorizes; the vector code does the
+/// same operations.
 #[inline(always)]
 fn isqrt_scaled(s: u64) -> u64 {
     let v = s << (2 * SQRT_EXTRA_BITS);
@@ -777,6 +945,82 @@ mod tests {
             assert!(fits(t) && !fits(t + 1), "m={m} t={t}");
         }
         assert_eq!(headroom(0, 32_767), EXP_CAP);
+    }
+
+    /// A deterministic pseudo-random sequence for the kernel tests.
+    fn noise(n: usize, seed: u64, range: i64) -> Vec<i64> {
+        let mut state = seed.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+        (0..n)
+            .map(|_| {
+                state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+                ((state >> 33) as i64 % (2 * range + 1)) - range
+            })
+            .collect()
+    }
+
+    #[test]
+    fn every_path_computes_the_same_convolution_sums() {
+        for (cin, cout, k, h, wd) in [
+            (12, 20, 3, 5, 9),
+            (64, 256, 3, 5, 9),
+            (7, 12, 3, 5, 9),
+            (64, 64, 1, 5, 9),
+            (96, 256, 3, 2, 2),
+            (64, 12, 3, 1, 3),
+        ] {
+            let w: Vec<f32> = noise(cout * cin * k * k, 1, 1000).iter().map(|&v| v as f32 / 997.0).collect();
+            let b: Vec<f32> = noise(cout, 2, 1000).iter().map(|&v| v as f32 / 300.0).collect();
+            let conv = IntConv::new(&w, &b, cout, cin, k, WEIGHT_MAX);
+            let mut x = Plane::zeroed(h, wd, conv.cin, k / 2);
+            let vals = noise(h * wd * cin, 3, conv.input_limit as i64);
+            for (p, v) in vals.chunks(cin).enumerate() {
+                let at = x.at(p / wd, p % wd);
+                for (ch, &v) in v.iter().enumerate() {
+                    x.data[at + ch] = v as i16;
+                }
+            }
+            let reference = conv.sums(&x, 3, IntPath::Portable);
+            for path in [IntPath::Avx2, IntPath::Native] {
+                assert_eq!(conv.sums(&x, 3, path), reference, "{cin}→{cout} k{k} on {}", path.describe());
+            }
+        }
+    }
+
+    #[test]
+    fn every_path_computes_the_same_inverse_gdn() {
+        let c = 64;
+        let gamma: Vec<f32> = noise(c * c, 5, 1000).iter().map(|&v| v.abs() as f32 / 4000.0).collect();
+        // Small β, and β large enough that the squares' shift passes 31 at high exponents.
+        for beta_scale in [1.0 / 500.0, 50.0] {
+            let beta: Vec<f32> = noise(c, 4, 1000).iter().map(|&v| (v.abs() + 1) as f32 * beta_scale).collect();
+            let igdn = IntIgdn::new(&beta, &gamma, c);
+            // A next layer with large weights (a small input limit: outputs shifted right) and one
+            // with a single small weight (a large limit: outputs of small inputs shifted left).
+            let mut sparse = vec![0.0; 12 * c * 9];
+            sparse[0] = 1e-3;
+            for next in [
+                IntConv::new(&vec![0.01; 12 * c * 9], &[0.0; 12], 12, c, 3, WEIGHT_MAX),
+                IntConv::new(&sparse, &[0.0; 12], 12, c, 3, WEIGHT_MAX),
+            ] {
+                for (seed, f, h, w) in
+                    [(6, 10, 3, 11), (7, 4, 3, 11), (8, 14, 3, 11), (9, 12, 2, 2), (10, 40, 1, 1), (11, 16, 4, 4)]
+                {
+                    for range in [32_767, 300, 3] {
+                        let mut x = Plane::zeroed(h, w, c, 0);
+                        for (d, v) in x.data.iter_mut().zip(noise(h * w * c, seed, range)) {
+                            *d = v as i16;
+                        }
+                        let (reference, fr) = igdn.forward(&x, f, &next, IntPath::Portable);
+                        for path in [IntPath::Avx2, IntPath::Native] {
+                            let (out, fo) = igdn.forward(&x, f, &next, path);
+                            assert_eq!(fo, fr);
+                            assert_eq!(out.data, reference.data, "f={f} range {range} {h}×{w} on {}", path.describe());
+                            assert!(out.data.iter().all(|v| v.abs() < 32_767), "no output reaches the clamp");
+                        }
+                    }
+                }
+            }
+        }
     }
 
     #[test]
