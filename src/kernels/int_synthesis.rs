@@ -378,8 +378,6 @@ mod x86 {
 
     use super::{CO_BLOCK, RowGeometry};
 
-    /// Positions and 16-channel blocks per AVX-512 register block (16 accumulators).
-
     /// # Safety
     /// The CPU must have AVX-512F and AVX-512BW; `src`, `packed`, `bias` and `acc` must hold
     /// the row `g` describes (as the portable code indexes them).
