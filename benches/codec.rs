@@ -1,7 +1,10 @@
 //! Encode and decode throughput of the embedded default model at three qualities on a 768×512
 //! photograph, with PNG and JPEG of the same image in the same groups (pixels/s), and candle's
 //! matmul as the ruler for the decoder's GFLOP/s; quality 50 also with every convolution as a gemm
-//! (`ConvBackend::GemmOnly`), to show what the Winograd and few-input kernels change.
+//! (`ConvBackend::GemmOnly`), to show what the Winograd and few-input kernels change. Decoding
+//! runs the exact integer synthesis on this CPU's widest path; at each quality the float
+//! synthesis (`Codec::decode_float`, not exact across CPUs) and the integer synthesis held to
+//! AVX2 run beside it.
 
 // The allocator the kiln binary uses, so that timings match it.
 #[global_allocator]
@@ -9,6 +12,7 @@ static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
 use criterion::{Criterion, Throughput, criterion_group, criterion_main};
 use kiln::eval::baselines::{decode_jpeg, encode_jpeg};
+use kiln::kernels::IntPath;
 use kiln::kernels::conv::{self, ConvBackend};
 use kiln::{AlphaPolicy, Codec, ModelFile, Picture};
 
@@ -56,13 +60,19 @@ fn codec_benches(c: &mut Criterion) {
     let mut dec = c.benchmark_group("decode 768x512");
     dec.throughput(Throughput::Elements(px));
     dec.sample_size(10);
+    let avx2 = Codec::new(ModelFile::load(None).unwrap()).unwrap().with_int_path(IntPath::Avx2);
+    let native = IntPath::Native.describe();
     for q in [10.0, 50.0, 90.0] {
         let bytes = codec.encode(&pic, q).unwrap().bytes;
-        dec.bench_function(format!("kiln q{q}"), |b| b.iter(|| codec.decode(&bytes).unwrap()));
+        dec.bench_function(format!("kiln q{q} integer {native}"), |b| b.iter(|| codec.decode(&bytes).unwrap()));
+        dec.bench_function(format!("kiln q{q} integer {}", IntPath::Avx2.describe()), |b| {
+            b.iter(|| avx2.decode(&bytes).unwrap())
+        });
+        dec.bench_function(format!("kiln q{q} float"), |b| b.iter(|| codec.decode_float(&bytes).unwrap()));
         if q == 50.0 {
-            dec.bench_function("kiln q50 gemm only", |b| {
+            dec.bench_function("kiln q50 float gemm only", |b| {
                 conv::set_backend(ConvBackend::GemmOnly);
-                b.iter(|| codec.decode(&bytes).unwrap());
+                b.iter(|| codec.decode_float(&bytes).unwrap());
                 conv::set_backend(ConvBackend::Fast);
             });
         }
