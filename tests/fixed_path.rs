@@ -96,3 +96,21 @@ fn register_blocked_path_gives_the_scalar_bits() {
         }
     }
 }
+
+/// Time of the default model's fixed-order hyper-synthesis for a 768×512 image (hyper-latent
+/// 16×24): `cargo test --release --test fixed_path hyper_synthesis_time -- --ignored --nocapture`.
+#[test]
+#[ignore]
+fn hyper_synthesis_time() {
+    let f = kiln::ModelFile::load(None).unwrap();
+    let hs = f.model.hyper_synthesis_fixed().unwrap();
+    let (hz, wz) = (16, 24);
+    let z: Vec<f32> = (0..f.model.config.nz * hz * wz).map(|i| ((i * 7919 % 13) as f32 - 6.0)).collect();
+    let mut best = f64::MAX;
+    for _ in 0..10 {
+        let t = std::time::Instant::now();
+        std::hint::black_box(hs.forward(&z, hz, wz, kiln::kernels::SimdMode::Vectorized));
+        best = best.min(t.elapsed().as_secs_f64());
+    }
+    eprintln!("hyper-synthesis {hz}×{wz}: {:.2} ms (fastest of 10)", best * 1e3);
+}
