@@ -105,7 +105,7 @@ fn hyper_synthesis_time() {
     let f = kiln::ModelFile::load(None).unwrap();
     let hs = f.model.hyper_synthesis_fixed().unwrap();
     let (hz, wz) = (16, 24);
-    let z: Vec<f32> = (0..f.model.config.nz * hz * wz).map(|i| ((i * 7919 % 13) as f32 - 6.0)).collect();
+    let z: Vec<f32> = (0..f.model.config.nz * hz * wz).map(|i| (i * 7919 % 13) as f32 - 6.0).collect();
     let mut best = f64::MAX;
     for _ in 0..10 {
         let t = std::time::Instant::now();
