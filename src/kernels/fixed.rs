@@ -82,13 +82,13 @@ impl FixedConv {
             return out;
         }
         let r = self.k / 2;
-        out.par_chunks_mut(row_len).enumerate().for_each(|(oy, row)| {
+        out.par_chunks_mut(row_len).enumerate().for_each_init(Vec::new, |patch, (oy, row)| {
             let mut ox = 0;
             while ox < w {
                 // Blocks of pixels whose taps all fall inside the image.
                 let interior = mode == SimdMode::Vectorized && oy >= r && oy + r < h && ox >= r;
                 if interior && ox + PIXEL_BLOCK + r <= w {
-                    self.block(x, h, w, oy, ox, &mut row[ox * self.cout..(ox + PIXEL_BLOCK) * self.cout]);
+                    self.block(x, h, w, oy, ox, &mut row[ox * self.cout..(ox + PIXEL_BLOCK) * self.cout], patch);
                     ox += PIXEL_BLOCK;
                     continue;
                 }
@@ -110,54 +110,83 @@ impl FixedConv {
     /// The same code is compiled for AVX-512 and AVX2 and picked at run time: wider registers
     /// hold more output channels, each lane still a plain sequence of separate `*` and `+` (Rust
     /// never contracts them into fused multiply-adds), so the bits do not change.
-    fn block(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
+    #[allow(clippy::too_many_arguments)]
+    fn block(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32], patch: &mut Vec<f32>) {
         #[cfg(target_arch = "x86_64")]
         {
             if is_x86_feature_detected!("avx512f") {
                 // SAFETY: the CPU has AVX-512F (checked).
-                return unsafe { self.block_avx512(x, h, w, oy, ox0, out) };
+                return unsafe { self.block_avx512(x, h, w, oy, ox0, out, patch) };
             }
             if is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has AVX2 (checked).
-                return unsafe { self.block_avx2(x, h, w, oy, ox0, out) };
+                return unsafe { self.block_avx2(x, h, w, oy, ox0, out, patch) };
             }
         }
-        self.block_portable(x, h, w, oy, ox0, out)
+        self.block_portable(x, h, w, oy, ox0, out, patch)
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx512f")]
-    fn block_avx512(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
-        self.block_portable(x, h, w, oy, ox0, out)
+    #[allow(clippy::too_many_arguments)]
+    fn block_avx512(
+        &self,
+        x: &[f32],
+        h: usize,
+        w: usize,
+        oy: usize,
+        ox0: usize,
+        out: &mut [f32],
+        patch: &mut Vec<f32>,
+    ) {
+        self.block_portable(x, h, w, oy, ox0, out, patch)
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    fn block_avx2(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
-        self.block_portable(x, h, w, oy, ox0, out)
+    #[allow(clippy::too_many_arguments)]
+    fn block_avx2(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32], patch: &mut Vec<f32>) {
+        self.block_portable(x, h, w, oy, ox0, out, patch)
     }
 
     #[inline(always)]
-    fn block_portable(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32]) {
+    #[allow(clippy::too_many_arguments)]
+    fn block_portable(
+        &self,
+        x: &[f32],
+        h: usize,
+        w: usize,
+        oy: usize,
+        ox0: usize,
+        out: &mut [f32],
+        patch: &mut Vec<f32>,
+    ) {
         let (cin, cout, k, r) = (self.cin, self.cout, self.k, self.k / 2);
         let full = cout / CHANNEL_BLOCK * CHANNEL_BLOCK;
+        // The block's inputs gathered once, `[tap][ci][pixel]`, so that the loops below run over
+        // contiguous memory without index checks; every element's sum keeps its order.
+        patch.resize(k * k * cin * PIXEL_BLOCK, 0.0);
+        for ky in 0..k {
+            for kx in 0..k {
+                let tap = ky * k + kx;
+                let pos0 = (oy + ky - r) * w + ox0 + kx - r;
+                for (j, px) in (pos0..pos0 + PIXEL_BLOCK).enumerate() {
+                    for (ci, &v) in x[px * cin..(px + 1) * cin].iter().enumerate() {
+                        patch[(tap * cin + ci) * PIXEL_BLOCK + j] = v;
+                    }
+                }
+            }
+        }
         for c0 in (0..full).step_by(CHANNEL_BLOCK) {
             let mut acc = [[0f32; CHANNEL_BLOCK]; PIXEL_BLOCK];
             for a in acc.iter_mut() {
                 a.copy_from_slice(&self.b[c0..c0 + CHANNEL_BLOCK]);
             }
-            for ky in 0..k {
-                for kx in 0..k {
-                    let tap = ky * k + kx;
-                    let pos0 = (oy + ky - r) * w + ox0 + kx - r;
-                    for ci in 0..cin {
-                        let wrow = &self.w[(tap * cin + ci) * cout + c0..][..CHANNEL_BLOCK];
-                        for (j, a) in acc.iter_mut().enumerate() {
-                            let xv = x[(pos0 + j) * cin + ci];
-                            for (q, &wv) in wrow.iter().enumerate() {
-                                a[q] += xv * wv;
-                            }
-                        }
+            for (xs, wrow) in patch.chunks_exact(PIXEL_BLOCK).zip(self.w.chunks_exact(cout)) {
+                let wrow: &[f32; CHANNEL_BLOCK] = wrow[c0..c0 + CHANNEL_BLOCK].try_into().expect("a block");
+                for (a, &xv) in acc.iter_mut().zip(xs) {
+                    for (q, &wv) in wrow.iter().enumerate() {
+                        a[q] += xv * wv;
                     }
                 }
             }
