@@ -353,17 +353,24 @@ fn row_portable(packed: &[i16], src: &[i16], g: &RowGeometry, bias: &[i32], acc:
     let pairs = g.k * seg;
     for (x, out) in acc.chunks_mut(wide).enumerate().take(g.w) {
         out.copy_from_slice(bias);
-        for (b, out) in out.chunks_mut(CO_BLOCK).enumerate() {
+        for (b, out) in out.chunks_exact_mut(CO_BLOCK).enumerate() {
+            // Fixed-size arrays, so that the compiler keeps the block in vector registers
+            // (SSE2, NEON) on targets without a hand-written kernel.
+            let out: &mut [i32; CO_BLOCK] = out.try_into().expect("a block");
+            let mut sums = *out;
             for ky in 0..g.k {
                 let row = &src[g.src + ky * g.stride + x * g.c..][..2 * seg];
-                for (p, pair) in row.chunks(2).enumerate() {
-                    let wp = &packed[(b * pairs + ky * seg + p) * 2 * CO_BLOCK..][..2 * CO_BLOCK];
-                    for (lane, o) in out.iter_mut().enumerate() {
-                        let v = pair[0] as i32 * wp[2 * lane] as i32 + pair[1] as i32 * wp[2 * lane + 1] as i32;
+                let weights = &packed[(b * pairs + ky * seg) * 2 * CO_BLOCK..][..seg * 2 * CO_BLOCK];
+                for (pair, wp) in row.chunks_exact(2).zip(weights.chunks_exact(2 * CO_BLOCK)) {
+                    let wp: &[i16; 2 * CO_BLOCK] = wp.try_into().expect("a pair block");
+                    let (a0, a1) = (pair[0] as i32, pair[1] as i32);
+                    for (lane, o) in sums.iter_mut().enumerate() {
+                        let v = a0 * wp[2 * lane] as i32 + a1 * wp[2 * lane + 1] as i32;
                         *o = o.wrapping_add(v);
                     }
                 }
             }
+            *out = sums;
         }
     }
 }
