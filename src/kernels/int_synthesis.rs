@@ -286,13 +286,20 @@ impl IntConv {
         let maxima = out
             .par_chunks_mut(w * self.cout)
             .enumerate()
-            .map(|(y, row)| {
-                let mut acc = vec![0i32; w * bias.len()];
-                self.row(x, y, &bias, &mut acc, path);
+            .map_init(Vec::new, |acc, (y, row)| {
                 let mut m = vec![0u64; self.cout];
-                for (o, a) in row.chunks_mut(self.cout).zip(acc.chunks(bias.len())) {
-                    o.copy_from_slice(&a[..self.cout]);
-                    for (m, v) in m.iter_mut().zip(o.iter()) {
+                if bias.len() == self.cout {
+                    // Whole blocks: the kernel writes the row in place.
+                    self.row(x, y, &bias, row, path);
+                } else {
+                    acc.resize(w * bias.len(), 0);
+                    self.row(x, y, &bias, acc, path);
+                    for (o, a) in row.chunks_mut(self.cout).zip(acc.chunks(bias.len())) {
+                        o.copy_from_slice(&a[..self.cout]);
+                    }
+                }
+                for px in row.chunks(self.cout) {
+                    for (m, v) in m.iter_mut().zip(px) {
                         *m = (*m).max(v.unsigned_abs() as u64);
                     }
                 }
@@ -974,12 +981,16 @@ impl IntSynthesis {
         }
         let mut x = Plane::zeroed(hy, wy, first.cin, first.k / 2);
         let plane = hy * wy;
-        for p in 0..plane {
-            let at = x.at(p / wy, p % wy);
-            for ch in 0..m {
-                x.data[at + ch] = to_act(scaled(y[ch * plane + p] as f64, f).round() as i64);
+        let (start, stride, cp) = (x.at(0, 0), x.row_stride(), x.c);
+        let scale = scaled(1.0, f);
+        x.data[start..].par_chunks_mut(stride).take(hy).enumerate().for_each(|(yy, row)| {
+            for xx in 0..wy {
+                let p = yy * wy + xx;
+                for ch in 0..m {
+                    row[xx * cp + ch] = to_act((y[ch * plane + p] as f64 * scale).round() as i64);
+                }
             }
-        }
+        });
         let last = self.convs.len() - 1;
         for (i, conv) in self.convs.iter().enumerate() {
             let (sums, maxima) = conv.sums(&x, f, path);
