@@ -399,3 +399,16 @@ fn encoder_only_training_refuses_a_new_model_or_a_change_of_shape() {
     let err = train(&o).unwrap_err();
     assert!(err.to_string().contains("cannot change its shape"), "{err}");
 }
+
+#[test]
+fn exporting_the_same_weights_gives_the_same_bytes() {
+    // A model's fingerprint is over its file's bytes: two exports of one model must agree
+    // (the header is written with its keys sorted, whatever order the writer's maps had).
+    let model = kiln::Model::new(kiln::ModelConfig::tiny(), 17).unwrap();
+    let a = model.export(&Default::default()).unwrap();
+    for _ in 0..5 {
+        assert_eq!(model.export(&Default::default()).unwrap(), a);
+    }
+    let file = kiln::ModelFile::from_bytes(&a).unwrap();
+    assert_eq!(file.model.config, kiln::ModelConfig::tiny());
+}

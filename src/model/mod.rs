@@ -367,9 +367,43 @@ impl Model {
             ("kiln.training".to_string(), json(serde_json::to_string(summary))),
         ]);
         tensors.sort_by(|a, b| a.0.cmp(&b.0));
-        safetensors::serialize(tensors.iter().map(|(n, t)| (n.as_str(), t)), Some(metadata))
-            .map_err(|e| KilnError::BadModel(format!("cannot serialize: {e}")))
+        let bytes = safetensors::serialize(tensors.iter().map(|(n, t)| (n.as_str(), t)), Some(metadata))
+            .map_err(|e| KilnError::BadModel(format!("cannot serialize: {e}")))?;
+        canonical_header(bytes)
     }
+}
+
+/// The same safetensors file with its JSON header's keys in sorted order (padded with spaces
+/// to a multiple of 8 bytes, as the format allows): the writer builds the header from hash
+/// maps, whose order changes from run to run, and a model's fingerprint is over its bytes, so
+/// exporting the same weights must give the same file. The data section is untouched (its
+/// offsets are relative to it).
+fn canonical_header(bytes: Vec<u8>) -> Result<Vec<u8>> {
+    let bad = |m: &str| KilnError::BadModel(format!("cannot serialize: {m}"));
+    let n = u64::from_le_bytes(bytes.get(..8).ok_or_else(|| bad("short file"))?.try_into().expect("8 bytes")) as usize;
+    let header: serde_json::Value = serde_json::from_slice(bytes.get(8..8 + n).ok_or_else(|| bad("short header"))?)
+        .map_err(|e| bad(&e.to_string()))?;
+    fn sorted(v: serde_json::Value) -> serde_json::Value {
+        match v {
+            serde_json::Value::Object(map) => {
+                let mut entries: Vec<(String, serde_json::Value)> =
+                    map.into_iter().map(|(k, v)| (k, sorted(v))).collect();
+                entries.sort_by(|a, b| a.0.cmp(&b.0));
+                serde_json::Value::Object(entries.into_iter().collect())
+            }
+            serde_json::Value::Array(a) => serde_json::Value::Array(a.into_iter().map(sorted).collect()),
+            other => other,
+        }
+    }
+    let mut text = serde_json::to_vec(&sorted(header)).map_err(|e| bad(&e.to_string()))?;
+    while !text.len().is_multiple_of(8) {
+        text.push(b' ');
+    }
+    let mut out = Vec::with_capacity(8 + text.len() + bytes.len() - 8 - n);
+    out.extend_from_slice(&(text.len() as u64).to_le_bytes());
+    out.extend_from_slice(&text);
+    out.extend_from_slice(&bytes[8 + n..]);
+    Ok(out)
 }
 
 /// A loaded model file: the network, its integer tables, metadata and fingerprint.
