@@ -15,9 +15,8 @@
 //!   point). A layer's input is limited to `⌊2³⁰ / max_c Σ|w_q[c]|⌋` (about 12–13 bits for the
 //!   shipped models) and its exponent so that every bias `round(b · 2^(f + s_c))` is below
 //!   2³⁰: then no `i32` sum can overflow, whatever the image. Integer sums are exact in any
-//!   order, so vectorized, blocked and threaded evaluations agree bit for bit. (14-bit weights
-//!   with the same guarantee leave the activations 9–10 bits and cost up to 0.17 dB; 11 bits cost
-//!   at most 0.005 dB against the float synthesis: `examples/integer_cost`.)
+//!   order, so vectorized, blocked and threaded evaluations agree bit for bit. (Why 11 bits:
+//!   wider weights leave the activations fewer bits under that limit; `docs/integer-decoder.md`.)
 //! - **Requantization**: `round_shift(acc, e)` = `(acc + 2^(e−1)) >> e` (round half up,
 //!   arithmetic shift) for `e > 0`, a left shift for `e ≤ 0`, clamped to ±32 767 (never
 //!   reached when the exponent came from the data's maxima). Depth-to-space is folded into where
@@ -412,9 +411,8 @@ mod x86 {
         unsafe { row512::<true>(packed, src, g, bias, acc) }
     }
 
-    /// Register blocks (positions × 16-channel blocks; 16 accumulators) measured best on a
-    /// 2-core AMD EPYC (Zen 4): 4 × 4 with `vpdpwssd` (125 GMAC/s on the default model's largest
-    /// layer), 8 × 2 with `vpmaddwd` + `vpaddd` (99 GMAC/s); `kernel_throughput` test.
+    /// Register blocks (positions × 16-channel blocks; 16 accumulators), as measured by the
+    /// `kernel_throughput` test (`docs/integer-decoder.md`).
     #[inline(always)]
     unsafe fn row512<const VNNI: bool>(packed: &[i16], src: &[i16], g: &RowGeometry, bias: &[i32], acc: &mut [i32]) {
         // SAFETY: the caller's contract.
