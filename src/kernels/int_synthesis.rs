@@ -1009,16 +1009,20 @@ impl IntSynthesis {
 /// `(2y + dy, 2x + dx)`, in a border-less plane of `cp ≥ c` channels.
 fn depth_to_space(sums: &[i32], exps: &[i32], f: i32, h: usize, w: usize, c: usize, cp: usize) -> Plane {
     let mut up = Plane::zeroed(2 * h, 2 * w, cp, 0);
-    let row2 = 2 * w * cp;
-    up.data.par_chunks_mut(2 * row2).enumerate().for_each(|(y, rows)| {
-        for x in 0..w {
+    // `round_shift(v, e)` as `((v + half) >> right) << left`: the same values, since the
+    // exponent `f` came from these sums' maxima (nothing reaches the clamp or overflows).
+    let rq = Requant::new(&exps.iter().map(|e| e - f).collect::<Vec<_>>());
+    let row = 2 * w * cp;
+    up.data.par_chunks_mut(row).enumerate().for_each(|(yy, out)| {
+        let (y, dy) = (yy / 2, yy % 2);
+        for (xx, px) in out.chunks_exact_mut(cp).enumerate() {
+            let (x, dx) = (xx / 2, xx % 2);
             let src = &sums[(y * w + x) * 4 * c..][..4 * c];
-            for ch in 0..c {
-                for d in 0..4 {
-                    let (dy, dx) = (d / 2, d % 2);
-                    let o = 4 * ch + d;
-                    rows[dy * row2 + (2 * x + dx) * cp + ch] = to_act(round_shift(src[o] as i64, exps[o] - f));
-                }
+            let d = 2 * dy + dx;
+            for (ch, o) in px[..c].iter_mut().enumerate() {
+                let k = 4 * ch + d;
+                let v = ((src[k] as i64 + rq.half[k]) >> rq.right[k]).wrapping_shl(rq.left[k] as u32);
+                *o = v.clamp(-ACT_MAX, ACT_MAX) as i16;
             }
         }
     });
