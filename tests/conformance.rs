@@ -1,7 +1,7 @@
 //! Conformance: every container in `tests/conformance/` (written by each shipped model: RGB at
 //! odd sizes and the lowest and highest quality, grey, two tiles) decodes to exactly the pixels
-//! whose SHA-256 `manifest.json` records, on this CPU's widest vector path, on AVX2 (where the
-//! CPU has it) and on the portable one,
+//! whose SHA-256 `manifest.json` records, on this CPU's widest vector path, on AVX-512BW and
+//! AVX2 (where the CPU has them) and on the portable one,
 //! with one thread and with two. A change that alters one decoded byte fails here; such a
 //! change needs a new model name (DEVELOPERS.md, "Formats and compatibility").
 //!
@@ -34,7 +34,7 @@ fn every_shipped_models_containers_decode_to_the_recorded_pixels_on_every_path()
     let mut checked = 0;
     for m in SHIPPED {
         let file = ModelFile::from_bytes(&ShippedModel::bytes(m).unwrap()).unwrap();
-        for path in [IntPath::Native, IntPath::Avx2, IntPath::Portable] {
+        for path in [IntPath::Native, IntPath::Avx512, IntPath::Avx2, IntPath::Portable] {
             let codec = Codec::new(file.clone()).unwrap().with_int_path(path);
             for (name, entry) in manifest.iter().filter(|(_, v)| v["model"] == m.name) {
                 let bytes = std::fs::read(dir().join(name)).unwrap();
@@ -55,7 +55,7 @@ fn every_shipped_models_containers_decode_to_the_recorded_pixels_on_every_path()
             }
         }
     }
-    assert_eq!(checked, manifest.len() * 6);
+    assert_eq!(checked, manifest.len() * 8);
     eprintln!(
         "{checked} decodes matched ({}, {} and portable paths)",
         IntPath::Native.describe(),

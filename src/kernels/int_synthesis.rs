@@ -55,6 +55,9 @@ const EXP_CAP: i32 = 40;
 pub enum IntPath {
     /// The widest vector instructions this CPU has (AVX-512BW, AVX2), chosen at run time.
     Native,
+    /// AVX-512BW without VNNI at most (`KILN_SIMD=avx512`: to measure and test those kernels on
+    /// a machine that has VNNI).
+    Avx512,
     /// AVX2 at most, even where AVX-512 is present (`KILN_SIMD=avx2`: to measure and test the
     /// AVX2 kernels on an AVX-512 machine).
     Avx2,
@@ -64,10 +67,11 @@ pub enum IntPath {
 
 impl IntPath {
     /// From the environment variable `KILN_SIMD`: `off` → `Portable`, `avx2` → `Avx2`,
-    /// anything else or unset → `Native`.
+    /// `avx512` → `Avx512`, anything else or unset → `Native`.
     pub fn from_env() -> Self {
         match std::env::var("KILN_SIMD").as_deref() {
             Ok("off") => IntPath::Portable,
+            Ok("avx512") => IntPath::Avx512,
             Ok("avx2") => IntPath::Avx2,
             _ => IntPath::Native,
         }
@@ -78,6 +82,7 @@ impl IntPath {
         match (self, isa()) {
             (IntPath::Portable, _) | (_, Isa::Baseline) => Isa::Baseline,
             (IntPath::Avx2, _) | (_, Isa::Avx2) => Isa::Avx2,
+            (IntPath::Avx512, _) => Isa::Avx512,
             (IntPath::Native, isa) => isa,
         }
     }
@@ -434,36 +439,44 @@ mod x86 {
         acc: &mut [i32],
     ) {
         let blocks = bias.len() / CO_BLOCK;
-        let mut x = 0;
-        while x < g.w {
-            let np = (g.w - x).min(P);
-            let mut b = 0;
-            while b < blocks {
-                let nb = (blocks - b).min(B);
-                // SAFETY: the caller's contract covers positions x..x+np and blocks b..b+nb.
-                unsafe {
-                    if (np, nb) == (P, B) {
-                        block512::<P, B, VNNI>(packed, src, g, bias, acc, x, b);
-                    } else {
-                        for j in 0..np {
-                            for i in 0..nb {
-                                block512::<1, 1, VNNI>(packed, src, g, bias, acc, x + j, b + i);
+        // Blocks of output channels outermost, then one tap row at a time over the whole row
+        // of positions: that tap row's weights for the blocks (k·c/2 pairs × B × 64 bytes, 24 KB
+        // for 64 input channels and 3×3) stay in L1 while every position uses them. Partial
+        // sums go through `acc` between tap rows (integer sums: any order gives the same).
+        let mut b = 0;
+        while b < blocks {
+            let nb = (blocks - b).min(B);
+            for ky in 0..g.k {
+                let mut x = 0;
+                while x < g.w {
+                    let np = (g.w - x).min(P);
+                    // SAFETY: the caller's contract covers positions x..x+np and blocks b..b+nb.
+                    unsafe {
+                        if (np, nb) == (P, B) {
+                            block512::<P, B, VNNI>(packed, src, g, bias, acc, x, b, ky);
+                        } else {
+                            for j in 0..np {
+                                for i in 0..nb {
+                                    block512::<1, 1, VNNI>(packed, src, g, bias, acc, x + j, b + i, ky);
+                                }
                             }
                         }
                     }
+                    x += np;
                 }
-                b += nb;
             }
-            x += np;
+            b += nb;
         }
     }
 
-    /// Sums of `NP` positions from `x` and `NB` blocks from `b`, every accumulator in a register
-    /// (the bounds are constants, so the loops unroll).
+    /// Tap row `ky`'s part of the sums of `NP` positions from `x` and `NB` blocks from `b`,
+    /// every accumulator in a register (the bounds are constants, so the loops unroll):
+    /// starting from the bias for the first tap row, from `acc` for the others.
     ///
     /// # Safety
     /// As [`row_avx512`], for positions `x..x+NP` and blocks `b..b+NB`.
     #[inline(always)]
+    #[allow(clippy::too_many_arguments)]
     unsafe fn block512<const NP: usize, const NB: usize, const VNNI: bool>(
         packed: &[i16],
         src: &[i16],
@@ -472,6 +485,7 @@ mod x86 {
         acc: &mut [i32],
         x: usize,
         b: usize,
+        ky: usize,
     ) {
         let wide = bias.len();
         let seg = g.k * g.c / 2;
@@ -479,28 +493,30 @@ mod x86 {
         // SAFETY: inside the rows and blocks the caller names.
         unsafe {
             let mut s = [[_mm512_setzero_si512(); NB]; NP];
-            for row in s.iter_mut() {
+            for (j, row) in s.iter_mut().enumerate() {
                 for (i, v) in row.iter_mut().enumerate() {
-                    *v = _mm512_loadu_si512(bias.as_ptr().add((b + i) * CO_BLOCK) as *const _);
+                    *v = if ky == 0 {
+                        _mm512_loadu_si512(bias.as_ptr().add((b + i) * CO_BLOCK) as *const _)
+                    } else {
+                        _mm512_loadu_si512(acc.as_ptr().add((x + j) * wide + (b + i) * CO_BLOCK) as *const _)
+                    };
                 }
             }
-            for ky in 0..g.k {
-                let base = src.as_ptr().add(g.src + ky * g.stride + x * g.c);
-                let wbase = packed.as_ptr().add((b * pairs + ky * seg) * 2 * CO_BLOCK);
-                for p in 0..seg {
-                    let mut wv = [_mm512_setzero_si512(); NB];
-                    for (i, v) in wv.iter_mut().enumerate() {
-                        *v = _mm512_loadu_si512(wbase.add((i * pairs + p) * 2 * CO_BLOCK) as *const _);
-                    }
-                    for (j, row) in s.iter_mut().enumerate() {
-                        let a = _mm512_set1_epi32((base.add(j * g.c + 2 * p) as *const i32).read_unaligned());
-                        for (v, w) in row.iter_mut().zip(&wv) {
-                            *v = if VNNI {
-                                _mm512_dpwssd_epi32(*v, a, *w)
-                            } else {
-                                _mm512_add_epi32(*v, _mm512_madd_epi16(a, *w))
-                            };
-                        }
+            let base = src.as_ptr().add(g.src + ky * g.stride + x * g.c);
+            let wbase = packed.as_ptr().add((b * pairs + ky * seg) * 2 * CO_BLOCK);
+            for p in 0..seg {
+                let mut wv = [_mm512_setzero_si512(); NB];
+                for (i, v) in wv.iter_mut().enumerate() {
+                    *v = _mm512_loadu_si512(wbase.add((i * pairs + p) * 2 * CO_BLOCK) as *const _);
+                }
+                for (j, row) in s.iter_mut().enumerate() {
+                    let a = _mm512_set1_epi32((base.add(j * g.c + 2 * p) as *const i32).read_unaligned());
+                    for (v, w) in row.iter_mut().zip(&wv) {
+                        *v = if VNNI {
+                            _mm512_dpwssd_epi32(*v, a, *w)
+                        } else {
+                            _mm512_add_epi32(*v, _mm512_madd_epi16(a, *w))
+                        };
                     }
                 }
             }
@@ -1100,7 +1116,7 @@ mod tests {
                 }
             }
             let reference = conv.sums(&x, 3, IntPath::Portable);
-            for path in [IntPath::Avx2, IntPath::Native] {
+            for path in [IntPath::Avx2, IntPath::Avx512, IntPath::Native] {
                 assert_eq!(conv.sums(&x, 3, path), reference, "{cin}→{cout} k{k} on {}", path.describe());
             }
         }
@@ -1158,7 +1174,7 @@ mod tests {
             *d = v as i16;
         }
         let macs = (h * wd * cout * cin * k * k) as f64;
-        for path in [IntPath::Native, IntPath::Avx2, IntPath::Portable] {
+        for path in [IntPath::Native, IntPath::Avx512, IntPath::Avx2, IntPath::Portable] {
             let mut best = f64::MAX;
             for _ in 0..3 {
                 let t = std::time::Instant::now();
