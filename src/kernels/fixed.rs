@@ -34,6 +34,17 @@ const PIXEL_BLOCK: usize = 4;
 /// Output channels per register block of the vectorized path.
 const CHANNEL_BLOCK: usize = 16;
 
+/// Where a block of `PIXEL_BLOCK` interior pixels lies: input `x` (`h × w × cin`), output row
+/// `oy`, first pixel `ox0`.
+#[derive(Clone, Copy)]
+struct BlockAt<'a> {
+    x: &'a [f32],
+    h: usize,
+    w: usize,
+    oy: usize,
+    ox0: usize,
+}
+
 /// A stride-1, zero-padded square convolution with fixed summation order.
 #[derive(Debug, Clone)]
 pub struct FixedConv {
@@ -88,7 +99,8 @@ impl FixedConv {
                 // Blocks of pixels whose taps all fall inside the image.
                 let interior = mode == SimdMode::Vectorized && oy >= r && oy + r < h && ox >= r;
                 if interior && ox + PIXEL_BLOCK + r <= w {
-                    self.block(x, h, w, oy, ox, &mut row[ox * self.cout..(ox + PIXEL_BLOCK) * self.cout], patch);
+                    let at = BlockAt { x, h, w, oy, ox0: ox };
+                    self.block(at, &mut row[ox * self.cout..(ox + PIXEL_BLOCK) * self.cout], patch);
                     ox += PIXEL_BLOCK;
                     continue;
                 }
@@ -110,57 +122,36 @@ impl FixedConv {
     /// The same code is compiled for AVX-512 and AVX2 and picked at run time: wider registers
     /// hold more output channels, each lane still a plain sequence of separate `*` and `+` (Rust
     /// never contracts them into fused multiply-adds), so the bits do not change.
-    #[allow(clippy::too_many_arguments)]
-    fn block(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32], patch: &mut Vec<f32>) {
+    fn block(&self, at: BlockAt, out: &mut [f32], patch: &mut Vec<f32>) {
         #[cfg(target_arch = "x86_64")]
         {
             if is_x86_feature_detected!("avx512f") {
                 // SAFETY: the CPU has AVX-512F (checked).
-                return unsafe { self.block_avx512(x, h, w, oy, ox0, out, patch) };
+                return unsafe { self.block_avx512(at, out, patch) };
             }
             if is_x86_feature_detected!("avx2") {
                 // SAFETY: the CPU has AVX2 (checked).
-                return unsafe { self.block_avx2(x, h, w, oy, ox0, out, patch) };
+                return unsafe { self.block_avx2(at, out, patch) };
             }
         }
-        self.block_portable(x, h, w, oy, ox0, out, patch)
+        self.block_portable(at, out, patch)
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx512f")]
-    #[allow(clippy::too_many_arguments)]
-    fn block_avx512(
-        &self,
-        x: &[f32],
-        h: usize,
-        w: usize,
-        oy: usize,
-        ox0: usize,
-        out: &mut [f32],
-        patch: &mut Vec<f32>,
-    ) {
-        self.block_portable(x, h, w, oy, ox0, out, patch)
+    fn block_avx512(&self, at: BlockAt, out: &mut [f32], patch: &mut Vec<f32>) {
+        self.block_portable(at, out, patch)
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    #[allow(clippy::too_many_arguments)]
-    fn block_avx2(&self, x: &[f32], h: usize, w: usize, oy: usize, ox0: usize, out: &mut [f32], patch: &mut Vec<f32>) {
-        self.block_portable(x, h, w, oy, ox0, out, patch)
+    fn block_avx2(&self, at: BlockAt, out: &mut [f32], patch: &mut Vec<f32>) {
+        self.block_portable(at, out, patch)
     }
 
     #[inline(always)]
-    #[allow(clippy::too_many_arguments)]
-    fn block_portable(
-        &self,
-        x: &[f32],
-        h: usize,
-        w: usize,
-        oy: usize,
-        ox0: usize,
-        out: &mut [f32],
-        patch: &mut Vec<f32>,
-    ) {
+    fn block_portable(&self, at: BlockAt, out: &mut [f32], patch: &mut Vec<f32>) {
+        let BlockAt { x, h, w, oy, ox0 } = at;
         let (cin, cout, k, r) = (self.cin, self.cout, self.k, self.k / 2);
         let full = cout / CHANNEL_BLOCK * CHANNEL_BLOCK;
         // The block's inputs gathered once, `[tap][ci][pixel]`, so that the loops below run over
