@@ -19,11 +19,35 @@ use crate::entropy::coder::{SymbolDecoder, SymbolEncoder, TableSet};
 use crate::entropy::gaussian::{SCALE_MAX, SCALE_MIN, scale_index};
 use crate::error::{KilnError, Result};
 use crate::image_io::Picture;
-use crate::kernels::{HyperSynthesisFixed, IntPath, IntSynthesis, PriorParameters, SimdMode};
+use crate::kernels::context_fixed::is_anchor;
+use crate::kernels::{CheckerboardFixed, HyperSynthesisFixed, IntPath, IntSynthesis, PriorParameters, SimdMode};
 use crate::model::config::check_quality;
 use crate::model::gain::GainVectors;
 use crate::model::{Model, ModelFile, hex_prefix};
 use crate::refine::{RefineConfig, RefineTarget, refine};
+
+/// One pass over the latent's elements in coding order (channel by channel, row-major).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Pass {
+    /// Every element (no context model).
+    All,
+    /// The anchors of the checkerboard (`(y + x)` even).
+    Anchors,
+    /// The other half, coded with the context's parameters.
+    Others,
+}
+
+impl Pass {
+    /// Flat indices (`c·h·w + y·w + x`) of this pass' elements in an `m × h × w` latent.
+    fn indices(self, m: usize, h: usize, w: usize) -> impl Iterator<Item = usize> {
+        let plane = h * w;
+        (0..m * plane).filter(move |&i| match self {
+            Pass::All => true,
+            Pass::Anchors => is_anchor(i % plane, w),
+            Pass::Others => !is_anchor(i % plane, w),
+        })
+    }
+}
 
 /// Which synthesis a decode runs.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -37,6 +61,8 @@ enum Synthesis {
 pub struct Codec {
     file: ModelFile,
     hyper_fixed: HyperSynthesisFixed,
+    /// The checkerboard context on the fixed-order path, when the model has one.
+    context: Option<CheckerboardFixed>,
     synthesis: IntSynthesis,
     int_path: IntPath,
     gaussian: TableSet,
@@ -192,12 +218,14 @@ impl Codec {
     /// Prepares a model for coding (builds the coding models from its integer tables).
     pub fn new(file: ModelFile) -> Result<Self> {
         let hyper_fixed = file.model.hyper_synthesis_fixed()?;
+        let context = file.model.context_fixed()?;
         let synthesis = file.model.synthesis_integer()?;
         let gaussian = TableSet::new(file.tables.gaussian.clone())?;
         let hyper = TableSet::new(file.tables.hyper.clone())?;
         Ok(Codec {
             file,
             hyper_fixed,
+            context,
             synthesis,
             int_path: IntPath::from_env(),
             gaussian,
@@ -308,12 +336,20 @@ impl Codec {
         for (i, &v) in z_hat.iter().enumerate() {
             enc_z.push(i / (hz * wz), v);
         }
-        let prior = crop_prior(self.prior(&z_hat, hz, wz, gains), hy, wy);
+        let mut prior = crop_prior(self.prior(&z_hat, hz, wz, gains), hy, wy);
         let y_vals = y.flatten_all()?.to_vec1::<f32>()?;
         let mut enc_y = SymbolEncoder::new(&self.gaussian);
-        for (i, &v) in y_vals.iter().enumerate() {
-            let k = scale_index(prior.log_scales[i], &self.file.tables.log_scale_thresholds);
-            enc_y.push(k, (v - prior.means[i]).round() as i32);
+        let mut y_hat = vec![0.0f32; y_vals.len()];
+        for &pass in self.latent_passes() {
+            if pass == Pass::Others {
+                self.apply_context(&y_hat, &mut prior);
+            }
+            for i in pass.indices(m, hy, wy) {
+                let k = scale_index(prior.log_scales[i], &self.file.tables.log_scale_thresholds);
+                let q = (y_vals[i] - prior.means[i]).round();
+                enc_y.push(k, q as i32);
+                y_hat[i] = q + prior.means[i];
+            }
         }
         let ideal = (enc_z.ideal_bits(), enc_y.ideal_bits());
         let record = TileRecord {
@@ -323,6 +359,20 @@ impl Codec {
             latent_bytes: 0,
         };
         Ok((record, TileStreams { hyper: enc_z.finish(), latent: enc_y.finish() }, ideal))
+    }
+
+    /// The passes over the latent in coding order: everything at once, or anchors then the
+    /// other half with a checkerboard context.
+    fn latent_passes(&self) -> &'static [Pass] {
+        if self.context.is_some() { &[Pass::Anchors, Pass::Others] } else { &[Pass::All] }
+    }
+
+    /// Adds the context's corrections to the non-anchor parameters of `prior`, from the decoded
+    /// anchors in `y_hat` (gained domain).
+    fn apply_context(&self, y_hat: &[f32], prior: &mut PriorParameters) {
+        if let Some(ctx) = &self.context {
+            ctx.refine(y_hat, prior, self.simd);
+        }
     }
 
     fn prior(&self, z_hat: &[i32], hz: usize, wz: usize, gains: &GainVectors) -> PriorParameters {
@@ -347,7 +397,12 @@ impl Codec {
             let (_, (hz, wz)) = tile_latent_sizes(rect.2 as usize, rect.3 as usize, stride);
             let z = scale_channels(&model.h_a.forward(&pad_latent(&y, hz, wz)?)?, &gains.z)?.round()?;
             let z_hat: Vec<i32> = z.flatten_all()?.to_vec1::<f32>()?.iter().map(|&v| v as i32).collect();
-            let prior = crop_prior(self.prior(&z_hat, hz, wz, &gains), hy, wy);
+            let mut prior = crop_prior(self.prior(&z_hat, hz, wz, &gains), hy, wy);
+            if self.context.is_some() {
+                let y_vals = y.flatten_all()?.to_vec1::<f32>()?;
+                let y_hat: Vec<f32> = y_vals.iter().zip(&prior.means).map(|(&v, &mu)| (v - mu).round() + mu).collect();
+                self.apply_context(&y_hat, &mut prior);
+            }
             let shape = y.shape().clone();
             let mu = Tensor::from_vec(prior.means, &shape, &Device::Cpu)?;
             let log_s = Tensor::from_vec(prior.log_scales, &shape, &Device::Cpu)?;
@@ -442,16 +497,24 @@ impl Codec {
             z_hat.push(dec_z.pop(i / (hz * wz))?);
         }
         dec_z.finish()?;
-        let prior = crop_prior(self.prior(&z_hat, hz, wz, gains), hy, wy);
+        let mut prior = crop_prior(self.prior(&z_hat, hz, wz, gains), hy, wy);
         let mut dec_y = SymbolDecoder::new(&self.gaussian, s.latent)?;
         let plane = hy * wy;
-        let mut y_hat = Vec::with_capacity(cfg.m * plane);
-        for i in 0..cfg.m * plane {
-            let k = scale_index(prior.log_scales[i], &self.file.tables.log_scale_thresholds);
-            let q = dec_y.pop(k)?;
-            y_hat.push((q as f32 + prior.means[i]) * gains.y_inv[i / plane]);
+        let mut y_hat = vec![0.0f32; cfg.m * plane];
+        for &pass in self.latent_passes() {
+            if pass == Pass::Others {
+                self.apply_context(&y_hat, &mut prior);
+            }
+            for i in pass.indices(cfg.m, hy, wy) {
+                let k = scale_index(prior.log_scales[i], &self.file.tables.log_scale_thresholds);
+                let q = dec_y.pop(k)?;
+                y_hat[i] = q as f32 + prior.means[i];
+            }
         }
         dec_y.finish()?;
+        for (i, v) in y_hat.iter_mut().enumerate() {
+            *v *= gains.y_inv[i / plane];
+        }
         if synthesis == Synthesis::Integer {
             return Ok(self.synthesis.decode_rgb8(&y_hat, cfg.m, hy, wy, tw, th, self.int_path));
         }

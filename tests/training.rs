@@ -52,6 +52,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         stop_after: None,
         balance: 0.0,
         hidden_channels: None,
+        context: None,
         stages: None,
         latent_warmup: 0,
         encoder_only: false,

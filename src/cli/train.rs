@@ -85,6 +85,11 @@ pub struct TrainArgs {
     /// (a start for training, not the same codec).
     #[arg(long)]
     stages: Option<usize>,
+    /// Context model: `none` or `checkerboard` (two passes; the second half of the latent is
+    /// predicted from the first). With --init or --resume a model without one is given one
+    /// that starts out coding exactly as before.
+    #[arg(long, value_name = "KIND", value_parser = parse_context)]
+    context: Option<kiln::model::context::ContextKind>,
     /// With --latent-channels: phase the new channels' bits into the loss over this many steps
     /// (not counted for the first half, then rising linearly), so that the synthesis learns to
     /// use them before the rate pulls them to zero; 0 counts them fully at once.
@@ -107,6 +112,15 @@ pub struct TrainArgs {
     /// run always writes its own again).
     #[arg(long)]
     force: bool,
+}
+
+fn parse_context(s: &str) -> Result<kiln::model::context::ContextKind, String> {
+    use kiln::model::context::ContextKind;
+    match s {
+        "none" => Ok(ContextKind::None),
+        "checkerboard" => Ok(ContextKind::Checkerboard),
+        _ => Err(format!("unknown context model {s:?} (choose none or checkerboard)")),
+    }
 }
 
 fn parse_config(s: &str) -> anyhow::Result<ModelConfig> {
@@ -149,6 +163,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         balance: a.balance,
         hidden_channels: a.hidden_channels,
         stages: a.stages,
+        context: a.context,
         latent_warmup: a.latent_warmup,
         encoder_only: a.encoder_only,
         rounded_rate: a.rounded_rate,

@@ -35,7 +35,7 @@ const PIXEL_BLOCK: usize = 4;
 const CHANNEL_BLOCK: usize = 16;
 
 /// Where a block of `PIXEL_BLOCK` interior pixels lies: input `x` (`h × w × cin`), output row
-/// `oy`, first pixel `ox0`.
+/// `oy`, first pixel `ox0`, pixels `step` apart (1, or 2 on a checkerboard).
 #[derive(Clone, Copy)]
 struct BlockAt<'a> {
     x: &'a [f32],
@@ -43,6 +43,19 @@ struct BlockAt<'a> {
     w: usize,
     oy: usize,
     ox0: usize,
+    step: usize,
+}
+
+/// Which output positions a convolution computes.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Positions {
+    /// Every position.
+    All,
+    /// Positions with `(y + x) % 2 == parity` only (the others are left at 0).
+    Checkerboard {
+        /// 0: anchors; 1: the other half.
+        parity: usize,
+    },
 }
 
 /// A stride-1, zero-padded square convolution with fixed summation order.
@@ -51,7 +64,10 @@ pub struct FixedConv {
     cin: usize,
     cout: usize,
     k: usize,
-    /// Weights as `[ky][kx][ci][co]`.
+    /// Taps in use (`ky·k + kx`, increasing): all of them unless built with
+    /// [`FixedConv::with_taps`].
+    taps: Vec<usize>,
+    /// Weights of the taps in use as `[tap][ci][co]`.
     w: Vec<f32>,
     b: Vec<f32>,
 }
@@ -59,19 +75,25 @@ pub struct FixedConv {
 impl FixedConv {
     /// Builds from weights in the usual `(cout, cin, k, k)` layout and a bias of length `cout`.
     pub fn new(weight_oikk: &[f32], bias: &[f32], cout: usize, cin: usize, k: usize) -> Self {
+        Self::with_taps(weight_oikk, bias, cout, cin, k, &(0..k * k).collect::<Vec<_>>())
+    }
+
+    /// Like [`FixedConv::new`], summing over the taps `taps` only (`ky·k + kx`, increasing): the
+    /// others' weights are ignored, as if they were zero, and cost nothing.
+    pub fn with_taps(weight_oikk: &[f32], bias: &[f32], cout: usize, cin: usize, k: usize, taps: &[usize]) -> Self {
         assert_eq!(weight_oikk.len(), cout * cin * k * k, "weight size");
         assert_eq!(bias.len(), cout, "bias size");
-        let mut w = vec![0.0; weight_oikk.len()];
+        assert!(taps.windows(2).all(|t| t[0] < t[1]) && taps.iter().all(|&t| t < k * k), "taps increasing, in range");
+        let mut w = vec![0.0; taps.len() * cin * cout];
         for co in 0..cout {
             for ci in 0..cin {
-                for ky in 0..k {
-                    for kx in 0..k {
-                        w[((ky * k + kx) * cin + ci) * cout + co] = weight_oikk[((co * cin + ci) * k + ky) * k + kx];
-                    }
+                for (t, &tap) in taps.iter().enumerate() {
+                    let (ky, kx) = (tap / k, tap % k);
+                    w[(t * cin + ci) * cout + co] = weight_oikk[((co * cin + ci) * k + ky) * k + kx];
                 }
             }
         }
-        FixedConv { cin, cout, k, w, b: bias.to_vec() }
+        FixedConv { cin, cout, k, taps: taps.to_vec(), w, b: bias.to_vec() }
     }
 
     /// Output channels.
@@ -81,11 +103,17 @@ impl FixedConv {
 
     /// Multiply-adds per output position.
     pub fn macs_per_output(&self) -> usize {
-        self.cin * self.cout * self.k * self.k
+        self.cin * self.cout * self.taps.len()
     }
 
     /// Applies the convolution to `x` (`h × w × cin`, HWC), giving `h × w × cout`.
     pub fn forward(&self, x: &[f32], h: usize, w: usize, mode: SimdMode) -> Vec<f32> {
+        self.forward_at(x, h, w, Positions::All, mode)
+    }
+
+    /// [`FixedConv::forward`] at `positions` only; the others' outputs are 0. A computed
+    /// element's value does not depend on which positions are computed.
+    pub fn forward_at(&self, x: &[f32], h: usize, w: usize, positions: Positions, mode: SimdMode) -> Vec<f32> {
         assert_eq!(x.len(), h * w * self.cin, "input size");
         let mut out = vec![0.0f32; h * w * self.cout];
         let row_len = w * self.cout;
@@ -93,29 +121,35 @@ impl FixedConv {
             return out;
         }
         let r = self.k / 2;
+        let cout = self.cout;
         out.par_chunks_mut(row_len).enumerate().for_each_init(Vec::new, |patch, (oy, row)| {
-            let mut ox = 0;
+            let (mut ox, step) = match positions {
+                Positions::All => (0, 1),
+                Positions::Checkerboard { parity } => ((oy + parity) % 2, 2),
+            };
             while ox < w {
                 // Blocks of pixels whose taps all fall inside the image.
+                let last = ox + (PIXEL_BLOCK - 1) * step;
                 let interior = mode == SimdMode::Vectorized && oy >= r && oy + r < h && ox >= r;
-                if interior && ox + PIXEL_BLOCK + r <= w {
-                    let at = BlockAt { x, h, w, oy, ox0: ox };
-                    self.block(at, &mut row[ox * self.cout..(ox + PIXEL_BLOCK) * self.cout], patch);
-                    ox += PIXEL_BLOCK;
+                if interior && last + r < w {
+                    let at = BlockAt { x, h, w, oy, ox0: ox, step };
+                    self.block(at, &mut row[ox * cout..(last + 1) * cout], patch);
+                    ox += PIXEL_BLOCK * step;
                     continue;
                 }
-                let acc = &mut row[ox * self.cout..(ox + 1) * self.cout];
+                let acc = &mut row[ox * cout..(ox + 1) * cout];
                 match mode {
-                    SimdMode::Vectorized => self.pixel_vectorized(x, h, w, oy, ox, 0..self.cout, acc),
+                    SimdMode::Vectorized => self.pixel_vectorized(x, h, w, oy, ox, 0..cout, acc),
                     SimdMode::Scalar => self.pixel_scalar(x, h, w, oy, ox, acc),
                 }
-                ox += 1;
+                ox += step;
             }
         });
         out
     }
 
-    /// `PIXEL_BLOCK` interior pixels from `ox0` on row `oy`, output channels in chunks of
+    /// `PIXEL_BLOCK` interior pixels from `ox0` on row `oy`, `step` apart (`out` starts at the
+    /// first and ends with the last), output channels in chunks of
     /// `CHANNEL_BLOCK` held in registers (the remainder per pixel). Each element's sum runs in
     /// the same order as in [`FixedConv::pixel_scalar`]: bias, taps row by row, input channels.
     ///
@@ -151,20 +185,19 @@ impl FixedConv {
 
     #[inline(always)]
     fn block_portable(&self, at: BlockAt, out: &mut [f32], patch: &mut Vec<f32>) {
-        let BlockAt { x, h, w, oy, ox0 } = at;
+        let BlockAt { x, h, w, oy, ox0, step } = at;
         let (cin, cout, k, r) = (self.cin, self.cout, self.k, self.k / 2);
         let full = cout / CHANNEL_BLOCK * CHANNEL_BLOCK;
         // The block's inputs gathered once, `[tap][ci][pixel]`, so that the loops below run over
         // contiguous memory without index checks; every element's sum keeps its order.
-        patch.resize(k * k * cin * PIXEL_BLOCK, 0.0);
-        for ky in 0..k {
-            for kx in 0..k {
-                let tap = ky * k + kx;
-                let pos0 = (oy + ky - r) * w + ox0 + kx - r;
-                for (j, px) in (pos0..pos0 + PIXEL_BLOCK).enumerate() {
-                    for (ci, &v) in x[px * cin..(px + 1) * cin].iter().enumerate() {
-                        patch[(tap * cin + ci) * PIXEL_BLOCK + j] = v;
-                    }
+        patch.resize(self.taps.len() * cin * PIXEL_BLOCK, 0.0);
+        for (t, &tap) in self.taps.iter().enumerate() {
+            let (ky, kx) = (tap / k, tap % k);
+            let pos0 = (oy + ky - r) * w + ox0 + kx - r;
+            for j in 0..PIXEL_BLOCK {
+                let px = pos0 + j * step;
+                for (ci, &v) in x[px * cin..(px + 1) * cin].iter().enumerate() {
+                    patch[(t * cin + ci) * PIXEL_BLOCK + j] = v;
                 }
             }
         }
@@ -182,23 +215,24 @@ impl FixedConv {
                 }
             }
             for (j, a) in acc.iter().enumerate() {
-                out[j * cout + c0..j * cout + c0 + CHANNEL_BLOCK].copy_from_slice(a);
+                let o = j * step * cout + c0;
+                out[o..o + CHANNEL_BLOCK].copy_from_slice(a);
             }
         }
         if full < cout {
             for j in 0..PIXEL_BLOCK {
-                let acc = &mut out[j * cout + full..(j + 1) * cout];
-                self.pixel_vectorized(x, h, w, oy, ox0 + j, full..cout, acc);
+                let o = j * step * cout;
+                self.pixel_vectorized(x, h, w, oy, ox0 + j * step, full..cout, &mut out[o + full..o + cout]);
             }
         }
     }
 
     fn taps(&self, h: usize, w: usize, oy: usize, ox: usize) -> impl Iterator<Item = (usize, usize)> + '_ {
         let r = self.k / 2;
-        (0..self.k).flat_map(move |ky| (0..self.k).map(move |kx| (ky, kx))).filter_map(move |(ky, kx)| {
-            let iy = (oy + ky).checked_sub(r)?;
-            let ix = (ox + kx).checked_sub(r)?;
-            (iy < h && ix < w).then_some((ky * self.k + kx, iy * w + ix))
+        self.taps.iter().enumerate().filter_map(move |(t, &tap)| {
+            let iy = (oy + tap / self.k).checked_sub(r)?;
+            let ix = (ox + tap % self.k).checked_sub(r)?;
+            (iy < h && ix < w).then_some((t, iy * w + ix))
         })
     }
 

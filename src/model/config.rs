@@ -8,6 +8,7 @@
 
 use serde::{Deserialize, Serialize};
 
+use super::context::ContextKind;
 use crate::error::{KilnError, Result};
 
 /// Channel counts, kernel sizes and trade-off anchors of a model.
@@ -32,6 +33,10 @@ pub struct ModelConfig {
     /// model with 4 does not write it, so its file is what it was before the field existed.
     #[serde(default = "four_stages", skip_serializing_if = "is_four_stages")]
     pub stages: usize,
+    /// The context model ([`super::context`]). Model files without the field have none, and a
+    /// model without one does not write it.
+    #[serde(default, skip_serializing_if = "ContextKind::is_none")]
+    pub context: ContextKind,
 }
 
 fn four_stages() -> usize {
@@ -59,6 +64,7 @@ impl Default for ModelConfig {
             synthesis_kernel: 3,
             lambdas: vec![0.0025, 0.005, 0.01, 0.02, 0.04, 0.08],
             stages: 4,
+            context: ContextKind::None,
         }
     }
 }
@@ -84,6 +90,7 @@ impl ModelConfig {
             synthesis_kernel: 3,
             lambdas: vec![0.005, 0.02, 0.08],
             stages: 4,
+            context: ContextKind::None,
         }
     }
 
@@ -112,6 +119,12 @@ impl ModelConfig {
             return bad("lambdas must be positive and increasing");
         }
         Ok(())
+    }
+
+    /// The model-file format tag for this configuration ([`super::MODEL_FORMAT`], or
+    /// [`super::MODEL_FORMAT_CONTEXT`] with a context model).
+    pub fn format_tag(&self) -> &'static str {
+        if self.context.is_none() { super::MODEL_FORMAT } else { super::MODEL_FORMAT_CONTEXT }
     }
 
     /// Downsampling factor of the analysis transform: `2^stages` (16 for four stages).

@@ -52,6 +52,10 @@ fn initial_values(name: &str, dims: &[usize], n: usize, rng: &mut ChaCha8Rng) ->
     if name.starts_with("prior.bias.") {
         return uniform(rng, -0.5, 0.5);
     }
+    if name.starts_with("ctx.2.") {
+        // The context's output layer starts at zero: a model starts out coding without it.
+        return vec![0.0; n];
+    }
     if name.ends_with(".weight") && dims.len() == 4 {
         let fan_in = (dims[1] * dims[2] * dims[3]) as f32;
         let b = 1.0 / fan_in.sqrt();

@@ -8,6 +8,7 @@
 
 pub mod analysis;
 pub mod config;
+pub mod context;
 pub mod density;
 pub mod gain;
 pub mod gdn;
@@ -35,8 +36,14 @@ use density::FactorizedDensity;
 use gain::GainUnits;
 use synthesis::{HyperSynthesis, Synthesis};
 
-/// Format tag stored in every model file's metadata.
+/// Format tag of model files without a context model (every model shipped before the context
+/// model existed).
 pub const MODEL_FORMAT: &str = "kiln-model-1";
+
+/// Format tag of model files with a context model ([`context`]). A new tag, so that a Kiln
+/// that predates context models refuses such a file instead of decoding with half its
+/// parameters.
+pub const MODEL_FORMAT_CONTEXT: &str = "kiln-model-2";
 
 pub use shipped::{DEFAULT_MODEL_BYTES, ShippedModel};
 
@@ -57,6 +64,8 @@ pub struct Model {
     pub gains: GainUnits,
     /// Hyper-latent density.
     pub prior: FactorizedDensity,
+    /// Checkerboard context, when the configuration has one.
+    pub ctx: Option<context::Checkerboard>,
     varmap: VarMap,
 }
 
@@ -184,6 +193,10 @@ impl Model {
             h_s: HyperSynthesis::new(&config, vb.pp("h_s"))?,
             gains: GainUnits::new(&config, vb.pp("gain"))?,
             prior: FactorizedDensity::new(config.nz, vb.pp("prior"))?,
+            ctx: match config.context {
+                context::ContextKind::None => None,
+                context::ContextKind::Checkerboard => Some(context::Checkerboard::new(config.m, vb.pp("ctx"))?),
+            },
             config,
             varmap,
         })
@@ -263,6 +276,19 @@ impl Model {
         let lik_z = self.prior.likelihood(&z_rate)?.clamp(LIKELIHOOD_FLOOR, 1.0)?;
         let z_hat = z_rounded.broadcast_mul(&GainUnits::batch(&g.z_inv, anchor, weight)?)?;
         let (mu, log_scale) = self.h_s.forward_split(&z_hat)?;
+        let (mu, log_scale) = match &self.ctx {
+            None => (mu, log_scale),
+            Some(ctx) => {
+                // Anchors are coded from h_s alone; the context sees their decoded values and
+                // corrects the other half's parameters.
+                let (h, w) = (yg.dim(2)?, yg.dim(3)?);
+                let anchor = context::anchor_mask(h, w)?;
+                let other = (1.0 - &anchor)?;
+                let anchors = (ste_round(&(&yg - &mu)?)? + &mu)?.broadcast_mul(&anchor)?;
+                let (d_mu, d_ls) = ctx.forward(&anchors, &mu, &log_scale)?;
+                ((&mu + d_mu.broadcast_mul(&other)?)?, (&log_scale + d_ls.broadcast_mul(&other)?)?)
+            }
+        };
         let sigma = log_scale.clamp(SCALE_MIN.ln(), SCALE_MAX.ln())?.exp()?;
         let residual = ste_round(&(&yg - &mu)?)?;
         let y_rate = match noise {
@@ -291,6 +317,35 @@ impl Model {
             Ok(FixedConv::new(&w.flatten_all()?.to_vec1::<f32>()?, &b.to_vec1::<f32>()?, co, ci, k))
         };
         Ok(HyperSynthesisFixed::new([conv("h_s.0")?, conv("h_s.2")?, conv("h_s.4")?], self.config.nz))
+    }
+
+    /// The fixed-order checkerboard context built from this model's `ctx` weights, if it has
+    /// a context model.
+    pub fn context_fixed(&self) -> Result<Option<crate::kernels::CheckerboardFixed>> {
+        if self.ctx.is_none() {
+            return Ok(None);
+        }
+        let vars: HashMap<String, Var> = self.named_vars().into_iter().collect();
+        let conv = |name: &str, taps: Option<&[usize]>| -> Result<FixedConv> {
+            let w = vars[&format!("{name}.weight")].as_tensor();
+            let b = vars[&format!("{name}.bias")].as_tensor();
+            let (co, ci, k, _) = w.dims4()?;
+            let (w, b) = (w.flatten_all()?.to_vec1::<f32>()?, b.to_vec1::<f32>()?);
+            Ok(match taps {
+                Some(t) => FixedConv::with_taps(&w, &b, co, ci, k, t),
+                None => FixedConv::new(&w, &b, co, ci, k),
+            })
+        };
+        let k = context::CONTEXT_KERNEL;
+        let r = (k / 2) as isize;
+        let taps: Vec<usize> =
+            context::anchor_taps(k).into_iter().map(|(dy, dx)| ((dy + r) * k as isize + dx + r) as usize).collect();
+        Ok(Some(crate::kernels::CheckerboardFixed::new(
+            conv("ctx.0", Some(&taps))?,
+            conv("ctx.1", None)?,
+            conv("ctx.2", None)?,
+            self.config.m,
+        )))
     }
 
     /// The integer synthesis built from this model's `g_s` weights (see
@@ -334,10 +389,16 @@ impl Model {
     }
 
     /// Encoder and decoder multiply-adds per pixel `(encoder, decoder)`, the encoder including
-    /// `h_s` (it needs the same means and scales).
+    /// `h_s` and the context model (it needs the same means and scales).
     pub fn macs_per_pixel(&self) -> (f64, f64) {
         let c = &self.config;
-        let hs = HyperSynthesis::macs_per_pixel(c);
+        let ctx = match c.context {
+            context::ContextKind::None => 0.0,
+            context::ContextKind::Checkerboard => {
+                context::Checkerboard::decoder_macs_per_latent(c.m) / (c.latent_stride() * c.latent_stride()) as f64
+            }
+        };
+        let hs = HyperSynthesis::macs_per_pixel(c) + ctx;
         (Analysis::macs_per_pixel(c) + HyperAnalysis::macs_per_pixel(c) + hs, Synthesis::macs_per_pixel(c) + hs)
     }
 
@@ -361,7 +422,7 @@ impl Model {
             .collect();
         let json = |v: serde_json::Result<String>| v.expect("serializing plain structs cannot fail");
         let metadata = HashMap::from([
-            ("kiln.format".to_string(), MODEL_FORMAT.to_string()),
+            ("kiln.format".to_string(), self.config.format_tag().to_string()),
             ("kiln.config".to_string(), json(serde_json::to_string(&self.config))),
             ("kiln.anchors".to_string(), json(serde_json::to_string(&anchors))),
             ("kiln.training".to_string(), json(serde_json::to_string(summary))),
@@ -444,11 +505,20 @@ impl ModelFile {
         let (_, meta) = safetensors::SafeTensors::read_metadata(bytes)
             .map_err(|e| KilnError::BadModel(format!("not a safetensors file: {e}")))?;
         let meta = meta.metadata().clone().unwrap_or_default();
-        if meta.get("kiln.format").map(String::as_str) != Some(MODEL_FORMAT) {
-            return Err(KilnError::BadModel(format!("not a Kiln model (expected format tag {MODEL_FORMAT})")));
+        let tag = meta.get("kiln.format").map(String::as_str);
+        if tag != Some(MODEL_FORMAT) && tag != Some(MODEL_FORMAT_CONTEXT) {
+            return Err(KilnError::BadModel(format!(
+                "not a Kiln model this version reads (format tag {tag:?}; this version reads {MODEL_FORMAT} and {MODEL_FORMAT_CONTEXT})"
+            )));
         }
         let config: ModelConfig = serde_json::from_str(meta.get("kiln.config").map(String::as_str).unwrap_or(""))
             .map_err(|e| KilnError::BadModel(format!("kiln.config: {e}")))?;
+        if tag != Some(config.format_tag()) {
+            return Err(KilnError::BadModel(format!(
+                "format tag {tag:?} does not match the configuration (context model {:?})",
+                config.context
+            )));
+        }
         let training: TrainingSummary =
             meta.get("kiln.training").and_then(|s| serde_json::from_str(s).ok()).unwrap_or_default();
         config.validate()?;

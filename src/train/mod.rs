@@ -28,6 +28,7 @@ use crate::files::{Overwrite, check_output};
 use crate::image_io::write_atomic;
 use crate::metrics::psnr;
 use crate::model::config::HYPER_STRIDE_MAX;
+use crate::model::context::ContextKind;
 use crate::model::gain::{GAIN_TABLES, retarget_rows};
 use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix, is_encoder_weight};
 use checkpoint::{CheckpointMeta, LatentWarmup};
@@ -100,6 +101,10 @@ pub struct TrainOptions {
     /// ([`stages::drop_stage`]: a start for training, not the same codec). `None` keeps the
     /// model's own.
     pub stages: Option<usize>,
+    /// Context model. For a new model it replaces the configuration's; with `init` or `resume` a
+    /// model without one is given one whose output layer is zero (it starts out coding exactly
+    /// as before). `None` keeps the model's own.
+    pub context: Option<ContextKind>,
     /// Steps over which a grown latent's new channels' bits are phased into the loss
     /// ([`LatentWarmup`]: not at all for the first half, then linearly); 0 counts them fully
     /// from the start.
@@ -228,6 +233,12 @@ fn adapt(
     let mut changed = false;
     let mut warmup = None;
     if let Some(m) = o.latent_channels.filter(|&m| m != config.m) {
+        if !config.context.is_none() {
+            return Err(KilnError::InvalidArgument(format!(
+                "--latent-channels {m}: the latent of a model with a context model cannot grow (its context layers are sized by it)\n\
+                 hint: grow the latent of a model without one, then add the context with --context"
+            )));
+        }
         tensors.extend(widen::widen_latent(tensors, config, m, o.seed)?);
         eprintln!("latent grown from {} to {m} channels", config.m);
         if o.latent_warmup > 0 {
@@ -253,6 +264,21 @@ fn adapt(
         *tensors = stages::drop_stage(tensors, config)?;
         eprintln!("transforms cut from {} to {s} stages (latent stride {})", config.stages, 1 << s);
         config.stages = s;
+        changed = true;
+    }
+    if let Some(kind) = o.context.filter(|&k| k != config.context) {
+        if !config.context.is_none() {
+            return Err(KilnError::InvalidArgument(format!(
+                "--context {kind:?}: the model already has a context model ({:?}); only a model without one can be given one",
+                config.context
+            )));
+        }
+        let with = Model::new(ModelConfig { context: kind, ..config.clone() }, o.seed)?;
+        for (name, var) in with.named_vars().into_iter().filter(|(n, _)| n.starts_with("ctx.")) {
+            tensors.insert(name, var.as_tensor().clone());
+        }
+        eprintln!("context model {kind:?} added (its output layer starts at zero)");
+        config.context = kind;
         changed = true;
     }
     if let Some(new) = o.lambdas.as_ref().filter(|l| **l != config.lambdas) {
@@ -305,6 +331,9 @@ fn start(o: &TrainOptions) -> Result<Run> {
             }
             if let Some(s) = o.stages {
                 c.stages = s;
+            }
+            if let Some(k) = o.context {
+                c.context = k;
             }
             (Model::new(c, o.seed)?, None)
         }
