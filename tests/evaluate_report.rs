@@ -20,6 +20,7 @@ fn evaluate_writes_the_whole_report() {
         out: out.clone(),
         qualities: vec![1.0, 30.0, 60.0, 100.0],
         jpeg_qualities: vec![10, 30, 60, 90],
+        baselines: vec![kiln::eval::baselines::Baseline::Jpeg, kiln::eval::baselines::Baseline::Png],
         jobs: 2,
         progress: false,
     };

@@ -3,7 +3,8 @@
 use std::path::PathBuf;
 
 use clap::Args;
-use kiln::eval::{DEFAULT_QUALITIES, EvalOptions, baselines::JPEG_QUALITIES};
+use kiln::eval::baselines::{Baseline, JPEG_QUALITIES};
+use kiln::eval::{DEFAULT_QUALITIES, EvalOptions};
 use kiln::{Codec, ModelFile};
 
 use super::refine_args::RefineArgs;
@@ -29,6 +30,10 @@ pub struct EvaluateArgs {
     /// JPEG qualities, comma-separated.
     #[arg(long, value_delimiter = ',')]
     jpeg_qualities: Option<Vec<u8>>,
+    /// Standard codecs to compare against, comma-separated (default: every one this build has:
+    /// jpeg, jpeg2000, webp, png, webp-lossless, jpeg2000-lossless).
+    #[arg(long, value_name = "LIST")]
+    baselines: Option<String>,
     #[command(flatten)]
     refine: RefineArgs,
     /// Images evaluated in parallel.
@@ -42,7 +47,12 @@ pub fn evaluate(a: EvaluateArgs) -> anyhow::Result<()> {
         kiln::model::config::check_quality(q)?;
     }
     let codec = a.refine.apply(Codec::new(ModelFile::load(a.model.as_deref())?)?)?;
+    let baselines = match a.baselines.as_deref() {
+        Some(list) => Baseline::parse_list(list)?,
+        None => Baseline::built(),
+    };
     let opts = EvalOptions {
+        baselines,
         dirs: a.dirs,
         out: a.out.clone(),
         qualities,
@@ -59,7 +69,23 @@ pub fn evaluate(a: EvaluateArgs) -> anyhow::Result<()> {
             eprintln!("  kiln q{q:>5}: {bpp:.3} bpp  {psnr:.2} dB  MS-SSIM {ms:.4}");
         }
     }
-    eprintln!("BD-rate vs JPEG (4:2:0, optimized Huffman): {}  (negative = fewer bits)", pct(s.bd_rate_vs_jpeg));
+    for (b, v) in &s.bd_rate_vs {
+        let per = s.bd_rate_mean_per_image_vs.get(b).copied().flatten();
+        eprintln!(
+            "BD-rate vs {b:<9} mean curve {:>7}, mean per image {:>7}  (negative = fewer bits)",
+            pct(*v),
+            pct(per)
+        );
+    }
+    for (b, bpp) in &s.lossless_bpp {
+        eprintln!("lossless {b:<18} {bpp:.3} bpp");
+    }
+    for v in &s.verdicts {
+        eprintln!("{v}");
+    }
+    for (name, why) in &s.not_built {
+        eprintln!("not compared: {name} ({why})");
+    }
     if reference.is_some() {
         eprintln!("BD-rate vs the reference model: {}", pct(s.bd_rate_vs_reference));
     }

@@ -57,3 +57,196 @@ pub fn encode_png_checked(pic: &Picture) -> Result<Vec<u8>> {
     }
     Ok(bytes)
 }
+
+/// A standard codec `kiln evaluate` compares against, with its sweep.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Hash)]
+pub enum Baseline {
+    /// JPEG (ISO/IEC 10918-1), 4:2:0, optimized Huffman tables: [`encode_jpeg`].
+    Jpeg,
+    /// JPEG 2000 (ISO/IEC 15444-1), OpenJPEG, one layer at a target PSNR.
+    #[cfg(feature = "standard-codecs")]
+    Jpeg2000,
+    /// WebP lossy, libwebp method 6.
+    #[cfg(feature = "standard-codecs")]
+    Webp,
+    /// PNG at best compression (image crate).
+    Png,
+    /// WebP lossless, libwebp method 6 quality 100.
+    #[cfg(feature = "standard-codecs")]
+    WebpLossless,
+    /// JPEG 2000 reversible 5/3 wavelet (the lossless mode of ISO/IEC 15444-1).
+    #[cfg(feature = "standard-codecs")]
+    Jpeg2000Lossless,
+}
+
+/// Standard codecs named in the issue that this build cannot run, with the reason; reports
+/// state them so that a missing curve is never mistaken for a win.
+pub const NOT_BUILT: &[(&str, &str)] = &[
+    ("avif", "no AV1 encoder and decoder that build with cargo alone are wired in yet"),
+    ("jpegxl", "the pure-Rust JPEG XL encoder on crates.io is AGPL-licensed; libjxl needs cmake"),
+    ("jpegxl-lossless", "as jpegxl"),
+    ("jpegls", "CharLS needs cmake; jpeg2000-lossless stands in for an exact-storage standard"),
+];
+
+impl Baseline {
+    /// Every baseline this build has, lossy first.
+    pub fn built() -> Vec<Baseline> {
+        vec![
+            Baseline::Jpeg,
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000,
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Webp,
+            Baseline::Png,
+            #[cfg(feature = "standard-codecs")]
+            Baseline::WebpLossless,
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000Lossless,
+        ]
+    }
+
+    /// The codec name in `rd.csv`, `summary.json` and `--baselines`.
+    pub fn name(self) -> &'static str {
+        match self {
+            Baseline::Jpeg => "jpeg",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000 => "jpeg2000",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Webp => "webp",
+            Baseline::Png => "png",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::WebpLossless => "webp-lossless",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000Lossless => "jpeg2000-lossless",
+        }
+    }
+
+    /// How reports name it, with its settings.
+    pub fn label(self) -> &'static str {
+        match self {
+            Baseline::Jpeg => "JPEG (4:2:0, optimized Huffman)",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000 => "JPEG 2000 (OpenJPEG, 9/7, target PSNR)",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Webp => "WebP (libwebp, method 6)",
+            Baseline::Png => "PNG",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::WebpLossless => "WebP lossless (libwebp, method 6)",
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000Lossless => "JPEG 2000 lossless (OpenJPEG, 5/3)",
+        }
+    }
+
+    /// Whether it reproduces every sample exactly (reported as bpp, not as a curve).
+    pub fn is_lossless(self) -> bool {
+        match self {
+            Baseline::Png => true,
+            #[cfg(feature = "standard-codecs")]
+            Baseline::WebpLossless | Baseline::Jpeg2000Lossless => true,
+            _ => false,
+        }
+    }
+
+    /// Parses a comma-separated list of names (`all`: every one built).
+    ///
+    /// # Errors
+    /// [`KilnError::InvalidArgument`] naming an unknown or unbuilt codec and the valid names.
+    pub fn parse_list(s: &str) -> Result<Vec<Baseline>> {
+        let built = Baseline::built();
+        let mut out = Vec::new();
+        for name in s.split(',').map(str::trim).filter(|n| !n.is_empty()) {
+            if name == "all" {
+                out.extend(built.iter().copied());
+                continue;
+            }
+            match built.iter().find(|b| b.name() == name) {
+                Some(&b) => out.push(b),
+                None => {
+                    let names: Vec<&str> = built.iter().map(|b| b.name()).collect();
+                    let why =
+                        NOT_BUILT.iter().find(|(n, _)| *n == name).map(|(_, w)| format!(" (not in this build: {w})"));
+                    return Err(KilnError::InvalidArgument(format!(
+                        "unknown baseline {name:?}{}; choose from {}",
+                        why.unwrap_or_default(),
+                        names.join(", ")
+                    )));
+                }
+            }
+        }
+        out.sort();
+        out.dedup();
+        Ok(out)
+    }
+
+    /// The settings swept (one empty setting for lossless codecs); `jpeg_qualities` is JPEG's.
+    pub fn settings(self, jpeg_qualities: &[u8]) -> Vec<String> {
+        match self {
+            Baseline::Jpeg => jpeg_qualities.iter().map(|q| q.to_string()).collect(),
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000 => super::jpeg2000::JPEG2000_PSNR_TARGETS.iter().map(|q| q.to_string()).collect(),
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Webp => super::webp::WEBP_QUALITIES.iter().map(|q| q.to_string()).collect(),
+            _ => vec![String::new()],
+        }
+    }
+
+    /// Encodes `pic` at `setting` (one of [`Baseline::settings`]): the whole file's bytes.
+    ///
+    /// # Errors
+    /// The codec's own errors, or a setting that does not parse.
+    pub fn encode(self, pic: &Picture, setting: &str) -> Result<Vec<u8>> {
+        let parse = |s: &str| -> Result<f32> {
+            s.parse().map_err(|_| KilnError::InvalidArgument(format!("{}: bad setting {s:?}", self.name())))
+        };
+        match self {
+            Baseline::Jpeg => encode_jpeg(&pic.data, pic.width, pic.height, parse(setting)? as u8),
+            Baseline::Png => encode_png_checked(pic),
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000 => {
+                super::jpeg2000::encode_jpeg2000(pic, super::jpeg2000::Jpeg2000Mode::TargetPsnr(parse(setting)?))
+            }
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000Lossless => {
+                super::jpeg2000::encode_jpeg2000(pic, super::jpeg2000::Jpeg2000Mode::Lossless)
+            }
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Webp => super::webp::encode_webp(pic, super::webp::WebpMode::Lossy(parse(setting)?)),
+            #[cfg(feature = "standard-codecs")]
+            Baseline::WebpLossless => super::webp::encode_webp(pic, super::webp::WebpMode::Lossless),
+        }
+    }
+
+    /// Decodes a file [`Baseline::encode`] wrote with the decoder named in the module docs,
+    /// into `channels` channels.
+    ///
+    /// # Errors
+    /// The decoder's own errors.
+    pub fn decode(self, bytes: &[u8], channels: u8) -> Result<Picture> {
+        match self {
+            Baseline::Jpeg => decode_jpeg(bytes, channels),
+            Baseline::Png => {
+                let img = image::load_from_memory(bytes)
+                    .map_err(|e| KilnError::UnsupportedImage(format!("PNG baseline: {e}")))?;
+                Picture::from_dynamic(img, crate::image_io::AlphaPolicy::Refuse)
+            }
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Jpeg2000 | Baseline::Jpeg2000Lossless => super::jpeg2000::decode_jpeg2000(bytes, channels),
+            #[cfg(feature = "standard-codecs")]
+            Baseline::Webp | Baseline::WebpLossless => super::webp::decode_webp(bytes, channels),
+        }
+    }
+
+    /// Checks a decode of `pic`: same shape, and the same samples for a lossless codec.
+    ///
+    /// # Errors
+    /// [`KilnError::UnsupportedImage`] naming the codec.
+    pub fn check_decode(self, pic: &Picture, dec: &Picture) -> Result<()> {
+        if (dec.width, dec.height, dec.channels) != (pic.width, pic.height, pic.channels) {
+            return Err(KilnError::UnsupportedImage(format!("{} decoded to another shape", self.name())));
+        }
+        if self.is_lossless() && dec.data != pic.data {
+            return Err(KilnError::UnsupportedImage(format!("{} did not reproduce the image exactly", self.name())));
+        }
+        Ok(())
+    }
+}

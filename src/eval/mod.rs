@@ -2,8 +2,12 @@
 //! images, with metrics, BD-rates and a report (`rd.csv`, `summary.json`, plots, `report.html`).
 
 pub mod baselines;
+#[cfg(feature = "standard-codecs")]
+pub mod jpeg2000;
 pub mod plot;
 pub mod report;
+#[cfg(feature = "standard-codecs")]
+pub mod webp;
 
 use std::path::{Path, PathBuf};
 use std::time::Instant;
@@ -30,6 +34,8 @@ pub struct EvalOptions {
     pub qualities: Vec<f32>,
     /// JPEG qualities.
     pub jpeg_qualities: Vec<u8>,
+    /// Standard codecs to compare against ([`baselines::Baseline::built`]: all of them).
+    pub baselines: Vec<baselines::Baseline>,
     /// Images evaluated in parallel.
     pub jobs: usize,
     /// Show a progress bar.
@@ -41,7 +47,7 @@ pub struct EvalOptions {
 pub struct Row {
     /// Image file name (relative to its folder).
     pub image: String,
-    /// `kiln`, `jpeg` or `png`.
+    /// `kiln`, `kiln-reference`, or a baseline's name ([`baselines::Baseline::name`]).
     pub codec: String,
     /// Quality setting (empty for PNG).
     pub setting: String,
@@ -145,27 +151,21 @@ pub fn evaluate_picture(
         kiln.push(dec);
     }
     let mut jpeg = Vec::new();
-    for &q in &o.jpeg_qualities {
-        let t = Instant::now();
-        let bytes = baselines::encode_jpeg(&pic.data, pic.width, pic.height, q)?;
-        let e = ms(t);
-        let t = Instant::now();
-        let dec = baselines::decode_jpeg(&bytes, pic.channels)?;
-        let d = ms(t);
-        rows.push(measure(
-            name,
-            "jpeg",
-            format!("{q}"),
-            Coded { bytes: bytes.len(), encode_ms: e, decode_ms: d },
-            pic,
-            &dec,
-        ));
-        jpeg.push(dec);
+    for &b in &o.baselines {
+        for setting in b.settings(&o.jpeg_qualities) {
+            let t = Instant::now();
+            let bytes = b.encode(pic, &setting)?;
+            let e = ms(t);
+            let t = Instant::now();
+            let dec = b.decode(&bytes, pic.channels)?;
+            let coded = Coded { bytes: bytes.len(), encode_ms: e, decode_ms: ms(t) };
+            b.check_decode(pic, &dec)?;
+            rows.push(measure(name, b.name(), setting, coded, pic, &dec));
+            if b == baselines::Baseline::Jpeg {
+                jpeg.push(dec);
+            }
+        }
     }
-    let t = Instant::now();
-    let png = baselines::encode_png_checked(pic)?;
-    let e = ms(t);
-    rows.push(measure(name, "png", String::new(), Coded { bytes: png.len(), encode_ms: e, decode_ms: 0.0 }, pic, pic));
     Ok(ImageResult { rows, original: pic.clone(), kiln, jpeg })
 }
 
@@ -193,6 +193,22 @@ pub struct Summary {
     pub size_vs_png: Vec<(String, f64)>,
     /// Mean PNG bits per pixel.
     pub png_bpp: f64,
+    /// BD-rate of Kiln against each lossy baseline on the mean curve (fraction; `None` where
+    /// the curves' ranges do not overlap).
+    pub bd_rate_vs: std::collections::BTreeMap<String, Option<f64>>,
+    /// Per-image BD-rate of Kiln against each lossy baseline.
+    pub bd_rate_per_image_vs: std::collections::BTreeMap<String, Vec<(String, Option<f64>)>>,
+    /// Mean of the per-image BD-rates against each lossy baseline (images whose curves do not
+    /// overlap left out).
+    pub bd_rate_mean_per_image_vs: std::collections::BTreeMap<String, Option<f64>>,
+    /// Mean bits per pixel of each lossless baseline.
+    pub lossless_bpp: std::collections::BTreeMap<String, f64>,
+    /// Bits per pixel of each lossless baseline, per image.
+    pub lossless_per_image: Vec<(String, std::collections::BTreeMap<String, f64>)>,
+    /// One sentence per lossy baseline: where Kiln stands against it on these images.
+    pub verdicts: Vec<String>,
+    /// Standard codecs this build could not run, with the reason.
+    pub not_built: Vec<(String, String)>,
     /// Fingerprint prefix of the model evaluated.
     pub model: String,
     /// Encoder refinement steps per tile Kiln's files were coded with (0: none).
@@ -207,7 +223,13 @@ fn curve(rows: &[&Row]) -> Vec<(f64, f64)> {
 pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model: String) -> Summary {
     let all: Vec<&Row> = results.iter().flat_map(|r| &r.rows).collect();
     let mut mean_curves = std::collections::BTreeMap::new();
-    for codec in ["kiln", REFERENCE_CODEC, "jpeg", "png"] {
+    let mut codecs: Vec<&str> = Vec::new();
+    for r in &all {
+        if !codecs.contains(&r.codec.as_str()) {
+            codecs.push(&r.codec);
+        }
+    }
+    for codec in codecs.iter().copied() {
         let mut settings: Vec<String> = Vec::new();
         for r in all.iter().filter(|r| r.codec == codec) {
             if !settings.contains(&r.setting) {
@@ -253,6 +275,47 @@ pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model:
         }
     }
     let png_bpp = mean_curves.get("png").and_then(|v| v.first()).map(|p| p.1).unwrap_or(f64::NAN);
+    let lossless: Vec<&str> = codecs
+        .iter()
+        .copied()
+        .filter(|c| all.iter().any(|r| r.codec == *c && r.psnr.is_infinite() && r.setting.is_empty()))
+        .collect();
+    let lossy: Vec<&str> =
+        codecs.iter().copied().filter(|c| !lossless.contains(c) && *c != "kiln" && *c != REFERENCE_CODEC).collect();
+    let mut bd_rate_vs = std::collections::BTreeMap::new();
+    let mut bd_rate_per_image_vs = std::collections::BTreeMap::new();
+    let mut bd_rate_mean_per_image_vs = std::collections::BTreeMap::new();
+    let mut verdicts = Vec::new();
+    for &b in &lossy {
+        let mean = bd::bd_rate(&mc(b), &mc("kiln"));
+        let per: Vec<(String, Option<f64>)> = results
+            .iter()
+            .map(|r| {
+                let k: Vec<&Row> = r.rows.iter().filter(|x| x.codec == "kiln").collect();
+                let j: Vec<&Row> = r.rows.iter().filter(|x| x.codec == b).collect();
+                (r.rows[0].image.clone(), bd::bd_rate(&curve(&j), &curve(&k)))
+            })
+            .collect();
+        let known: Vec<f64> = per.iter().filter_map(|p| p.1).collect();
+        let per_mean = (!known.is_empty()).then(|| known.iter().sum::<f64>() / known.len() as f64);
+        verdicts.push(verdict(b, per_mean, known.len(), per.len()));
+        bd_rate_vs.insert(b.to_string(), mean);
+        bd_rate_per_image_vs.insert(b.to_string(), per);
+        bd_rate_mean_per_image_vs.insert(b.to_string(), per_mean);
+    }
+    let lossless_bpp = lossless.iter().filter_map(|c| Some((c.to_string(), mean_curves.get(*c)?.first()?.1))).collect();
+    let lossless_per_image = results
+        .iter()
+        .map(|r| {
+            let row = r
+                .rows
+                .iter()
+                .filter(|x| lossless.contains(&x.codec.as_str()))
+                .map(|x| (x.codec.clone(), x.bpp))
+                .collect();
+            (r.rows[0].image.clone(), row)
+        })
+        .collect();
     Summary {
         images: results.len(),
         skipped,
@@ -263,8 +326,32 @@ pub fn summarize(results: &[ImageResult], skipped: Vec<(String, String)>, model:
         bd_rate_per_image,
         size_vs_png,
         png_bpp,
+        bd_rate_vs,
+        bd_rate_per_image_vs,
+        bd_rate_mean_per_image_vs,
+        lossless_bpp,
+        lossless_per_image,
+        verdicts,
+        not_built: baselines::NOT_BUILT.iter().map(|(n, w)| (n.to_string(), w.to_string())).collect(),
         model,
         refine_iterations: 0,
+    }
+}
+
+/// The sentence a report states for one lossy baseline, from the mean of the per-image
+/// BD-rates (`n` of `total` images had overlapping curves).
+pub fn verdict(baseline: &str, per_image_mean: Option<f64>, n: usize, total: usize) -> String {
+    let name = baselines::Baseline::built()
+        .into_iter()
+        .find(|b| b.name() == baseline)
+        .map_or(baseline.to_string(), |b| b.label().to_string());
+    let of = if n == total { format!("these {total} images") } else { format!("{n} of these {total} images") };
+    match per_image_mean {
+        None => format!("Kiln and {name}: no overlapping quality range to compare on these images."),
+        Some(v) if v > 0.0 => {
+            format!("Kiln needs {:.0}% more bits than {name} at equal PSNR on {of}.", 100.0 * v)
+        }
+        Some(v) => format!("Kiln needs {:.0}% fewer bits than {name} at equal PSNR on {of}.", -100.0 * v),
     }
 }
 
