@@ -132,3 +132,29 @@ fn kiln_decoders_agree_with_the_reference_decoders() {
     }
     assert!(checked >= 6, "only {checked} reference files checked");
 }
+
+#[test]
+fn damaged_files_are_refused_not_decoded_into_garbage_or_a_crash() {
+    for p in points() {
+        let Some(file) = &p.file else { continue };
+        for cut in [0, 1, 16, file.len() / 2] {
+            // A truncated file may still decode a partial image for progressive formats; it
+            // must not panic, hang or return the wrong shape.
+            if let Ok(dec) = p.baseline.decode(&file[..cut], 3) {
+                assert!(dec.width > 0 && dec.height > 0, "{} decoded {cut} bytes to an empty image", p.baseline.name());
+                assert_eq!(dec.data.len(), (dec.width * dec.height * 3) as usize);
+            }
+        }
+        let noise: Vec<u8> = (0..4096u32).map(|i| (i.wrapping_mul(2_654_435_761) >> 24) as u8).collect();
+        assert!(p.baseline.decode(&noise, 3).is_err(), "{} decoded noise", p.baseline.name());
+    }
+}
+
+#[test]
+fn unknown_and_unbuilt_baselines_are_named() {
+    let err = Baseline::parse_list("jpeg,avif").unwrap_err().to_string();
+    assert!(err.contains("\"avif\"") && err.contains("not in this build") && err.contains("jpeg2000"), "{err}");
+    assert!(Baseline::parse_list("jpg").unwrap_err().to_string().contains("choose from"));
+    assert_eq!(Baseline::parse_list("all").unwrap(), Baseline::built());
+    assert_eq!(Baseline::parse_list("png,jpeg,png").unwrap(), vec![Baseline::Jpeg, Baseline::Png]);
+}

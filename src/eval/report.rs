@@ -4,14 +4,11 @@
 use std::fmt::Write as _;
 use std::path::Path;
 
-use super::plot::{Plot, Series};
-use super::{ImageResult, Summary};
+use super::plot::{PALETTE, Plot, Series};
+use super::{ImageResult, Row, Summary};
 use crate::error::{KilnError, Result};
 use crate::image_io::{Picture, write_atomic};
 
-const KILN_COLOR: [u8; 3] = [200, 80, 30];
-const JPEG_COLOR: [u8; 3] = [40, 100, 190];
-const REFERENCE_COLOR: [u8; 3] = [120, 160, 60];
 const CROP: u32 = 192;
 
 fn num(v: f64) -> String {
@@ -50,22 +47,49 @@ pub fn rd_csv(results: &[ImageResult]) -> String {
     s
 }
 
-/// The two rate–distortion plots of the mean curves.
+/// Legend label and colour of a codec's curve (Kiln in black, the rest from the colour-blind-safe
+/// palette in a fixed order, so a codec keeps its colour from report to report).
+fn style(codec: &str) -> (String, [u8; 3]) {
+    let lossy = ["jpeg", "jpeg2000", "webp", "avif", "jpegxl"];
+    match codec {
+        "kiln" => ("Kiln".into(), PALETTE[0]),
+        super::REFERENCE_CODEC => ("Kiln, reference model".into(), PALETTE[6]),
+        _ => {
+            let label = super::baselines::Baseline::built()
+                .into_iter()
+                .find(|b| b.name() == codec)
+                .map_or(codec.to_string(), |b| b.label().to_string());
+            let i = lossy.iter().position(|c| *c == codec).unwrap_or(lossy.len());
+            (label, PALETTE[1 + i.min(PALETTE.len() - 2)])
+        }
+    }
+}
+
+/// The codecs with curves (Kiln first), in the order of `codecs`.
+fn curve_codecs<'a>(
+    codecs: impl Iterator<Item = &'a String>,
+    lossless: &std::collections::BTreeMap<String, f64>,
+) -> Vec<String> {
+    let mut out: Vec<String> = codecs.filter(|c| !lossless.contains_key(*c)).cloned().collect();
+    out.sort_by_key(|c| (c != "kiln", c != super::REFERENCE_CODEC, c.clone()));
+    out
+}
+
+/// The two rate–distortion plots of the mean curves (PSNR and MS-SSIM against bpp).
 pub fn plots(summary: &Summary) -> [Plot; 2] {
+    let codecs = curve_codecs(summary.mean_curves.keys(), &summary.lossless_bpp);
     let series = |metric: usize| -> Vec<Series> {
-        [
-            ("kiln", "Kiln", KILN_COLOR),
-            (super::REFERENCE_CODEC, "Kiln, reference model", REFERENCE_COLOR),
-            ("jpeg", "JPEG 4:2:0", JPEG_COLOR),
-        ]
-        .iter()
-        .filter_map(|(k, label, color)| {
-            let pts = summary.mean_curves.get(*k)?;
-            let mut points: Vec<(f64, f64)> = pts.iter().map(|p| (p.1, if metric == 0 { p.2 } else { p.4 })).collect();
-            points.sort_by(|a, b| a.0.total_cmp(&b.0));
-            Some(Series { label: label.to_string(), color: *color, points })
-        })
-        .collect()
+        codecs
+            .iter()
+            .filter_map(|k| {
+                let pts = summary.mean_curves.get(k)?;
+                let mut points: Vec<(f64, f64)> =
+                    pts.iter().map(|p| (p.1, if metric == 0 { p.2 } else { p.4 })).collect();
+                points.sort_by(|a, b| a.0.total_cmp(&b.0));
+                let (label, color) = style(k);
+                Some(Series { label, color, points })
+            })
+            .collect()
     };
     let marker = Some(("PNG lossless".to_string(), summary.png_bpp));
     [
@@ -84,6 +108,33 @@ pub fn plots(summary: &Summary) -> [Plot; 2] {
             marker,
         },
     ]
+}
+
+/// The PSNR plot of one image's curves.
+pub fn image_plot(rows: &[Row], lossless: &std::collections::BTreeMap<String, f64>) -> Plot {
+    let mut names: Vec<String> = Vec::new();
+    for r in rows {
+        if !names.contains(&r.codec) {
+            names.push(r.codec.clone());
+        }
+    }
+    let series = curve_codecs(names.iter(), lossless)
+        .into_iter()
+        .map(|k| {
+            let mut points: Vec<(f64, f64)> = rows.iter().filter(|r| r.codec == k).map(|r| (r.bpp, r.psnr)).collect();
+            points.sort_by(|a, b| a.0.total_cmp(&b.0));
+            let (label, color) = style(&k);
+            Series { label, color, points }
+        })
+        .collect();
+    let png = rows.iter().find(|r| r.codec == "png").map(|r| r.bpp);
+    Plot {
+        title: format!("Rate-distortion, {}", rows.first().map_or("", |r| r.image.as_str())),
+        x_label: "bits per pixel".into(),
+        y_label: "PSNR (dB)".into(),
+        series,
+        marker: png.map(|b| ("PNG lossless".to_string(), b)),
+    }
 }
 
 fn crop(p: &Picture) -> Picture {
@@ -145,8 +196,39 @@ Mean PNG size: {:.3} bpp.{}</p>",
             .map(|v| format!(" BD-rate vs the reference model: <b>{:+.1}%</b>.", 100.0 * v))
             .unwrap_or_default()
     );
+    html += "<h2>Verdict</h2><ul>";
+    for v in &summary.verdicts {
+        let _ = write!(html, "<li>{}</li>", esc(v));
+    }
+    html += "</ul><p>BD-rate: the average difference in bits at equal PSNR over the quality range both \
+        curves share (VCEG-M33), per image, then averaged over the images.</p>";
+    if !summary.not_built.is_empty() {
+        html += "<p>Not compared by this build: ";
+        let names: Vec<String> = summary.not_built.iter().map(|(n, w)| format!("{} ({})", esc(n), esc(w))).collect();
+        html += &names.join("; ");
+        html += ".</p>";
+    }
     for svg in &svgs {
         html += svg;
+    }
+    if !summary.lossless_bpp.is_empty() {
+        html += "<h2>Lossless</h2><table><tr><th>image</th>";
+        for c in summary.lossless_bpp.keys() {
+            let _ = write!(html, "<th>{} bpp</th>", esc(c));
+        }
+        html += "</tr>";
+        for (img, row) in &summary.lossless_per_image {
+            let _ = write!(html, "<tr><td>{}</td>", esc(img));
+            for c in summary.lossless_bpp.keys() {
+                let _ = write!(html, "<td>{}</td>", row.get(c).map_or("".into(), |b| format!("{b:.3}")));
+            }
+            html += "</tr>";
+        }
+        html += "<tr><th>mean</th>";
+        for b in summary.lossless_bpp.values() {
+            let _ = write!(html, "<th>{b:.3}</th>");
+        }
+        html += "</tr></table>";
     }
     html += "<h2>Mean curves</h2><table><tr><th>codec</th><th>setting</th><th>bpp</th><th>PSNR dB</th><th>SSIM</th><th>MS-SSIM</th></tr>";
     for (codec, pts) in &summary.mean_curves {
@@ -158,16 +240,29 @@ Mean PNG size: {:.3} bpp.{}</p>",
             );
         }
     }
-    html += "</table><h2>Per image</h2><table><tr><th>image</th><th>BD-rate vs JPEG</th></tr>";
-    for (img, v) in &summary.bd_rate_per_image {
-        let _ = write!(
-            html,
-            "<tr><td>{}</td><td>{}</td></tr>",
-            esc(img),
-            v.map(|v| format!("{:+.1}%", 100.0 * v)).unwrap_or("n/a".into())
-        );
+    html += "</table><h2>Per image</h2><p>BD-rate of Kiln against each codec (negative: Kiln needs fewer bits).</p><table><tr><th>image</th>";
+    for b in summary.bd_rate_per_image_vs.keys() {
+        let _ = write!(html, "<th>vs {}</th>", esc(b));
     }
-    html += "</table><h2>Crops</h2><p>Centre crops, shown at 1.5×: original, Kiln at a middle quality, JPEG at the nearest bpp.</p>";
+    html += "</tr>";
+    for (i, (img, _)) in summary.bd_rate_per_image.iter().enumerate() {
+        let _ = write!(html, "<tr><td>{}</td>", esc(img));
+        for per in summary.bd_rate_per_image_vs.values() {
+            let v = per.get(i).and_then(|p| p.1);
+            let _ = write!(html, "<td>{}</td>", v.map(|v| format!("{:+.1}%", 100.0 * v)).unwrap_or("n/a".into()));
+        }
+        html += "</tr>";
+    }
+    html += "</table><h2>Per-image curves</h2>";
+    let plots_dir = dir.join("plots");
+    std::fs::create_dir_all(&plots_dir).map_err(|e| KilnError::io(&plots_dir, e))?;
+    for r in results {
+        let plot = image_plot(&r.rows, &summary.lossless_bpp);
+        let file = format!("{}-rd-psnr.svg", safe_name(&r.rows[0].image));
+        write(&plots_dir.join(&file), plot.to_svg().as_bytes())?;
+        let _ = write!(html, "<img src=\"plots/{file}\" alt=\"{}\" width=\"540\">", esc(&r.rows[0].image));
+    }
+    html += "<h2>Crops</h2><p>Centre crops, shown at 1.5×: original, Kiln at a middle quality, JPEG at the nearest bpp.</p>";
     for r in results {
         let name = safe_name(&r.rows[0].image);
         let kiln_rows: Vec<_> = r.rows.iter().filter(|x| x.codec == "kiln").collect();
