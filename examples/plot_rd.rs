@@ -40,8 +40,8 @@ fn main() -> anyhow::Result<()> {
         series,
         marker: first["png_bpp"].as_f64().map(|b| ("PNG lossless".to_string(), b)),
     };
-    std::fs::write(format!("{stem}.svg"), plot.to_svg())?;
-    plot.to_png_image().save(format!("{stem}.png"))?;
+    std::fs::write(format!("{stem}.svg"), plot.to_svg()?)?;
+    plot.to_png_image()?.save(format!("{stem}.png"))?;
     eprintln!("wrote {stem}.svg and {stem}.png");
     Ok(())
 }

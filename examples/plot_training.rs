@@ -103,8 +103,8 @@ fn main() -> anyhow::Result<()> {
             series,
             marker: None,
         };
-        std::fs::write(format!("{prefix}-{name}.svg"), plot.to_svg())?;
-        plot.to_png_image().save(format!("{prefix}-{name}.png"))?;
+        std::fs::write(format!("{prefix}-{name}.svg"), plot.to_svg()?)?;
+        plot.to_png_image()?.save(format!("{prefix}-{name}.png"))?;
         println!("{prefix}-{name}.{{svg,png}}");
     }
     Ok(())

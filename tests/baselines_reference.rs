@@ -3,7 +3,7 @@
 //! imagecodecs 2026.3.6 with OpenJPEG 2.5.4; on the scikit-image photographs camera and
 //! chelsea): at the same settings each Kiln encoder must land near the reference library (a
 //! crippled baseline would flatter Kiln), and Kiln's decoders must decode the reference
-//! library's own files to within 0.05 dB of its decoder.
+//! library's own files to within 0.05 dB of its decoder (AVIF: 0.15 dB, see below).
 
 use kiln::eval::baselines::Baseline;
 use kiln::image_io::{AlphaPolicy, Picture};
@@ -82,6 +82,9 @@ fn every_baseline_encodes_like_its_reference_library() {
     assert!(pts.len() >= 10, "fixture has {} usable points", pts.len());
     let (mut report, mut failures) = (Vec::new(), Vec::new());
     for p in &pts {
+        if p.baseline.name() == "avif" {
+            continue; // another encoder than the reference's: compared by curve below
+        }
         let pic = picture(&p.image);
         let bytes = p.baseline.encode(&pic, &p.setting).unwrap();
         let dec = p.baseline.decode(&bytes, pic.channels).unwrap();
@@ -121,8 +124,12 @@ fn kiln_decoders_agree_with_the_reference_decoders() {
         let pic = picture(&p.image);
         let dec = p.baseline.decode(file, pic.channels).unwrap();
         let got = psnr(&pic.data, &dec.data);
+        // AVIF: Kiln converts YCbCr to RGB with the exact matrix of ITU-T H.273; libavif with
+        // libyuv's fixed-point approximation of it. Measured: 0.10 dB apart at 40.5 dB on the
+        // RGB photograph, within 0.05 dB below 36 dB and on grey.
+        let tolerance = if p.baseline.name() == "avif" { 0.15 } else { 0.05 };
         assert!(
-            (got - want).abs() <= 0.05,
+            (got - want).abs() <= tolerance,
             "{} {} {}: {got:.3} dB vs the reference decoder's {want:.3}",
             p.image,
             p.baseline.name(),
@@ -152,9 +159,42 @@ fn damaged_files_are_refused_not_decoded_into_garbage_or_a_crash() {
 
 #[test]
 fn unknown_and_unbuilt_baselines_are_named() {
-    let err = Baseline::parse_list("jpeg,avif").unwrap_err().to_string();
-    assert!(err.contains("\"avif\"") && err.contains("not in this build") && err.contains("jpeg2000"), "{err}");
+    let err = Baseline::parse_list("jpeg,jpegxl").unwrap_err().to_string();
+    assert!(err.contains("\"jpegxl\"") && err.contains("not in this build") && err.contains("jpeg2000"), "{err}");
     assert!(Baseline::parse_list("jpg").unwrap_err().to_string().contains("choose from"));
     assert_eq!(Baseline::parse_list("all").unwrap(), Baseline::built());
     assert_eq!(Baseline::parse_list("png,jpeg,png").unwrap(), vec![Baseline::Jpeg, Baseline::Png]);
+}
+
+/// rav1e (Kiln's AVIF encoder) against libavif/libaom at speed 4 (the reference the project's
+/// ruler uses), by BD-rate over each photograph's curve. Measured: rav1e needs 5.0% (camera)
+/// and 2.5% (chelsea) more bits, so Kiln's AVIF baseline is slightly weaker than the
+/// reference and flatters Kiln by about that much.
+#[cfg(feature = "avif")]
+#[test]
+fn the_avif_encoder_is_compared_with_libavif_by_curve() {
+    let text = std::fs::read_to_string("tests/fixtures/baselines/reference.json").unwrap();
+    let json: serde_json::Value = serde_json::from_str(&text).unwrap();
+    for image in ["camera.png", "chelsea.png"] {
+        let reference: Vec<(f64, f64)> = json["points"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|p| p["codec"] == "avif-curve" && p["image"] == image)
+            .map(|p| (p["bytes"].as_f64().unwrap(), p["psnr"].as_f64().unwrap()))
+            .collect();
+        let pic = picture(image);
+        let ours: Vec<(f64, f64)> = Baseline::Avif
+            .settings(&[])
+            .iter()
+            .map(|s| {
+                let bytes = Baseline::Avif.encode(&pic, s).unwrap();
+                let dec = Baseline::Avif.decode(&bytes, pic.channels).unwrap();
+                (bytes.len() as f64, psnr(&pic.data, &dec.data))
+            })
+            .collect();
+        let bd = kiln::metrics::bd::bd_rate(&reference, &ours).expect("overlapping curves");
+        eprintln!("{image}: rav1e vs libavif {:+.1}%", 100.0 * bd);
+        assert!((-0.05..=0.15).contains(&bd), "{image}: rav1e needs {:+.1}% bits against libavif", 100.0 * bd);
+    }
 }

@@ -31,7 +31,13 @@ SETTINGS = {
     "webp": [15.0, 50.0, 85.0],
     "webp-lossless": [None],
     "jpeg2000-lossless": [None],
+    # libavif/libaom files (4:4:4) for the decoder check; the encoders differ (Kiln uses rav1e),
+    # so the encoder is compared by its whole curve ("avif-curve") instead of point by point.
+    "avif": [25, 55, 80],
 }
+
+# libavif/libaom at speed 4 and its default pixel format, as ../shared/tools/rd_check.py codes.
+AVIF_CURVE_LEVELS = (10, 25, 40, 55, 70, 80, 90)
 
 
 def psnr(a, b):
@@ -65,6 +71,16 @@ def code(codec, img, setting):
     elif codec == "jpeg2000":
         data = imagecodecs.jpeg2k_encode(img, level=setting, codecformat="J2K")
         dec = imagecodecs.jpeg2k_decode(data)
+    elif codec == "avif":
+        rgb = np.stack([img] * 3, axis=2) if grey else img
+        data = imagecodecs.avif_encode(rgb, level=setting, speed=4, pixelformat="444")
+        dec = imagecodecs.avif_decode(data)
+        dec = grey_of(dec) if grey else dec
+    elif codec == "avif-curve":
+        rgb = np.stack([img] * 3, axis=2) if grey else img
+        data = imagecodecs.avif_encode(rgb, level=setting, speed=4)
+        dec = imagecodecs.avif_decode(data)
+        dec = grey_of(dec) if grey else dec
     elif codec == "jpeg2000-lossless":
         data = imagecodecs.jpeg2k_encode(img, level=0, codecformat="J2K", reversible=True)
         dec = imagecodecs.jpeg2k_decode(data)
@@ -78,7 +94,7 @@ def main():
     points = []
     for name in ("camera", "chelsea"):
         img = np.asarray(Image.open(SRC / f"{name}.png"))
-        for codec, settings in SETTINGS.items():
+        for codec, settings in list(SETTINGS.items()) + [("avif-curve", AVIF_CURVE_LEVELS)]:
             for s in settings:
                 data, p = code(codec, img, s)
                 points.append({
@@ -88,7 +104,7 @@ def main():
                     "bytes": len(data),
                     "psnr": None if p == float("inf") else round(p, 4),
                     # Lossless files are checked by exactness; only lossy ones are stored.
-                    "file": None if s is None else base64.b64encode(data).decode(),
+                    "file": None if s is None or codec == "avif-curve" else base64.b64encode(data).decode(),
                 })
                 print(f"{name:8} {codec:18} {str(s):6} {len(data):7} B  {p:.3f} dB")
     meta = {
@@ -99,9 +115,11 @@ def main():
             "libjpeg (Pillow)": features.version("jpg"),
             "libwebp (Pillow)": features.version("webp"),
             "openjpeg (imagecodecs)": imagecodecs.version(dict).get("openjpeg", ""),
+            "libavif (imagecodecs)": imagecodecs.version(dict).get("libavif", ""),
         },
         "settings": "jpeg: Pillow quality, 4:2:0, optimize; jpeg2000: imagecodecs level = target PSNR, J2K "
-        "codestream, 9/7 (lossless: reversible 5/3); webp: Pillow method 6 (lossless: quality 100)",
+        "codestream, 9/7 (lossless: reversible 5/3); webp: Pillow method 6 (lossless: quality 100); "
+        "avif: imagecodecs level, speed 4, 4:4:4 (avif-curve: its default pixel format)",
         "points": points,
     }
     (OUT / "reference.json").write_text(json.dumps(meta, indent=1) + "\n")

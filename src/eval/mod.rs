@@ -1,6 +1,8 @@
 //! Rate–distortion evaluation: Kiln at a quality sweep against JPEG and PNG on folders of
 //! images, with metrics, BD-rates and a report (`rd.csv`, `summary.json`, plots, `report.html`).
 
+#[cfg(feature = "avif")]
+pub mod avif;
 pub mod baselines;
 #[cfg(feature = "standard-codecs")]
 pub mod jpeg2000;

@@ -4,6 +4,8 @@
 use std::sync::Once;
 
 use image::RgbImage;
+
+use crate::error::{KilnError, Result};
 use plotters::prelude::*;
 use plotters::style::FontStyle;
 
@@ -76,7 +78,7 @@ impl Plot {
         ((0.0, (x1 * 1.05).max(1e-3)), (y0 - pad, y1 + pad))
     }
 
-    fn draw<DB: DrawingBackend>(&self, root: DrawingArea<DB, plotters::coord::Shift>) -> Result<(), String>
+    fn draw<DB: DrawingBackend>(&self, root: DrawingArea<DB, plotters::coord::Shift>) -> std::result::Result<(), String>
     where
         DB::ErrorType: 'static,
     {
@@ -144,28 +146,36 @@ impl Plot {
     }
 
     /// The plot as an SVG document.
-    pub fn to_svg(&self) -> String {
+    ///
+    /// # Errors
+    /// [`KilnError::InvalidArgument`] if plotters cannot lay the plot out.
+    pub fn to_svg(&self) -> Result<String> {
+        register_font();
         let mut s = String::new();
         {
             let root = SVGBackend::with_string(&mut s, SIZE).into_drawing_area();
-            // Drawing into a string cannot fail; a failure would leave an incomplete document.
-            if let Err(msg) = self.draw(root) {
-                return format!("<svg xmlns=\"http://www.w3.org/2000/svg\"><text y=\"20\">{msg}</text></svg>");
-            }
+            self.draw(root).map_err(plot_error)?;
         }
-        s
+        Ok(s)
     }
 
     /// The plot as an RGB raster.
-    pub fn to_png_image(&self) -> RgbImage {
+    ///
+    /// # Errors
+    /// As [`Plot::to_svg`].
+    pub fn to_png_image(&self) -> Result<RgbImage> {
         register_font();
         let mut buf = vec![255u8; (SIZE.0 * SIZE.1 * 3) as usize];
         {
             let root = BitMapBackend::with_buffer(&mut buf, SIZE).into_drawing_area();
-            let _ = self.draw(root);
+            self.draw(root).map_err(plot_error)?;
         }
-        RgbImage::from_raw(SIZE.0, SIZE.1, buf).expect("buffer of the plot's size")
+        Ok(RgbImage::from_raw(SIZE.0, SIZE.1, buf).expect("buffer of the plot's size"))
     }
+}
+
+fn plot_error(m: String) -> KilnError {
+    KilnError::InvalidArgument(format!("cannot draw the plot: {m}"))
 }
 
 #[cfg(test)]
@@ -187,7 +197,7 @@ mod tests {
 
     #[test]
     fn svg_names_every_curve_and_axis() {
-        let svg = plot().to_svg();
+        let svg = plot().to_svg().unwrap();
         for s in ["<svg", "Kiln", "JPEG", "bits per pixel", "PSNR (dB)", "off scale"] {
             assert!(svg.contains(s), "missing {s}");
         }
@@ -195,7 +205,7 @@ mod tests {
 
     #[test]
     fn png_draws_curves_in_their_colours_and_text() {
-        let img = plot().to_png_image();
+        let img = plot().to_png_image().unwrap();
         assert_eq!(img.dimensions(), SIZE);
         let count = |c: [u8; 3]| img.pixels().filter(|p| p.0 == c).count();
         assert!(count(PALETTE[1]) > 100, "the JPEG curve is missing");

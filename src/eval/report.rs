@@ -165,9 +165,9 @@ pub fn write_report(dir: &Path, results: &[ImageResult], summary: &Summary) -> R
     let [p_psnr, p_ms] = plots(summary);
     let mut svgs = Vec::new();
     for (p, name) in [(&p_psnr, "rd-psnr"), (&p_ms, "rd-ms-ssim")] {
-        let svg = p.to_svg();
+        let svg = p.to_svg()?;
         write(&dir.join(format!("{name}.svg")), svg.as_bytes())?;
-        let img = p.to_png_image();
+        let img = p.to_png_image()?;
         let pic = Picture { width: img.width(), height: img.height(), channels: 3, data: img.into_raw() };
         write(&dir.join(format!("{name}.png")), &pic.to_png()?)?;
         svgs.push(svg);
@@ -259,7 +259,7 @@ Mean PNG size: {:.3} bpp.{}</p>",
     for r in results {
         let plot = image_plot(&r.rows, &summary.lossless_bpp);
         let file = format!("{}-rd-psnr.svg", safe_name(&r.rows[0].image));
-        write(&plots_dir.join(&file), plot.to_svg().as_bytes())?;
+        write(&plots_dir.join(&file), plot.to_svg()?.as_bytes())?;
         let _ = write!(html, "<img src=\"plots/{file}\" alt=\"{}\" width=\"540\">", esc(&r.rows[0].image));
     }
     html += "<h2>Crops</h2><p>Centre crops, shown at 1.5×: original, Kiln at a middle quality, JPEG at the nearest bpp.</p>";
