@@ -293,6 +293,7 @@ impl Codec {
         }
         let coded_bits = streams.iter().map(|s: &TileStreams| 32 * (s.hyper.len() + s.latent.len()) as u64).sum();
         let header = Header {
+            flags: if self.context.is_some() { container::FLAG_CHECKERBOARD } else { 0 },
             width: pic.width,
             height: pic.height,
             channels: pic.channels,
@@ -438,6 +439,13 @@ impl Codec {
                 expected: hex_prefix(&header.model_fingerprint, 8),
                 given: hex_prefix(&self.file.fingerprint, 8),
             });
+        }
+        if (header.flags & container::FLAG_CHECKERBOARD != 0) != self.context.is_some() {
+            return Err(KilnError::Corrupt(format!(
+                "the container says its latent is {} checkerboard context, but its model {} one",
+                if header.flags & container::FLAG_CHECKERBOARD != 0 { "coded with a" } else { "not coded with a" },
+                if self.context.is_some() { "has" } else { "lacks" }
+            )));
         }
         let gains = self.gains(header.quality)?;
         let (w, h, c) = (header.width as usize, header.height as usize, header.channels as usize);

@@ -171,3 +171,27 @@ fn a_context_model_file_has_its_own_format_tag_and_a_mismatch_is_refused() {
     let (plain, _) = common::split_safetensors(&common::tiny_model_bytes(1));
     assert_eq!(plain["__metadata__"]["kiln.format"], "kiln-model-1");
 }
+
+#[test]
+fn the_container_flags_the_two_pass_latent_and_a_mismatch_or_unknown_flag_is_refused() {
+    use kiln::container::{self, FLAG_CHECKERBOARD};
+    let ctx = Codec::new(ModelFile::from_bytes(&context_model(11).export(&Default::default()).unwrap()).unwrap()).unwrap();
+    let plain = common::tiny_codec(11);
+    let pic = synthetic_picture(64, 48, 3, 1);
+    let (a, b) = (ctx.encode(&pic, 50.0).unwrap().bytes, plain.encode(&pic, 50.0).unwrap().bytes);
+    assert_eq!(container::read_header(&a).unwrap().flags, FLAG_CHECKERBOARD);
+    assert_eq!(container::read_header(&b).unwrap().flags, 0);
+    // Rewritten with valid checksums but the flag cleared or set wrongly: refused by name.
+    let with_flags = |bytes: &[u8], flags: u16| {
+        let (mut h, s) = container::read(bytes).unwrap();
+        h.flags = flags;
+        container::write(&h, &s).unwrap()
+    };
+    let err = ctx.decode(&with_flags(&a, 0)).unwrap_err().to_string();
+    assert!(err.contains("checkerboard"), "{err}");
+    let err = plain.decode(&with_flags(&b, FLAG_CHECKERBOARD)).unwrap_err().to_string();
+    assert!(err.contains("checkerboard"), "{err}");
+    // A flag this build does not know: refused before anything is decoded.
+    let err = container::read(&with_flags(&b, 2)).unwrap_err().to_string();
+    assert!(err.contains("unknown flags"), "{err}");
+}

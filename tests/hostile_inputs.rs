@@ -56,6 +56,7 @@ fn a_crafted_container_is_refused_before_its_claims_are_allocated() {
     // One 4096×4096 tile, one word per stream, valid checksums, default model's fingerprint.
     let fingerprint = kiln::ModelFile::load(None).unwrap().fingerprint;
     let header = container::Header {
+        flags: 0,
         width: 4096,
         height: 4096,
         channels: 3,

@@ -5,7 +5,7 @@
 //! |---|---|---|
 //! | 0 | 4 | magic `8B 4B 4C 4E` (`\x8b` then `KLN`; the high first byte catches text-mode mangling) |
 //! | 4 | 2 | format version (`1`) |
-//! | 6 | 2 | flags (none defined in version 1; any set bit is rejected) |
+//! | 6 | 2 | flags: bit 0 [`FLAG_CHECKERBOARD`]; any other set bit is rejected |
 //! | 8 | 4 | header length `L` in bytes, from offset 0 through the header CRC |
 //! | 12 | 4 | image width |
 //! | 16 | 4 | image height |
@@ -53,6 +53,14 @@ use crate::error::{KilnError, Result};
 pub const MAGIC: [u8; 4] = [0x8b, b'K', b'L', b'N'];
 /// The format version this build writes and reads.
 pub const FORMAT_VERSION: u16 = 1;
+
+/// Header flag: the latent is coded in two checkerboard passes, the second with the model's
+/// context ([`crate::model::context`]). Kiln releases before context models reject any set
+/// flag, so they refuse such a file instead of misreading it.
+pub const FLAG_CHECKERBOARD: u16 = 1;
+
+/// Every flag this build understands.
+pub const KNOWN_FLAGS: u16 = FLAG_CHECKERBOARD;
 /// Largest accepted width or height.
 pub const MAX_SIDE: u32 = 65_535;
 /// Largest accepted pixel count.
@@ -113,6 +121,8 @@ pub struct TileRecord {
 /// Everything in the header.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Header {
+    /// Flags ([`FLAG_CHECKERBOARD`]).
+    pub flags: u16,
     /// Image width in pixels.
     pub width: u32,
     /// Image height in pixels.
@@ -215,7 +225,7 @@ pub fn write(header: &Header, streams: &[TileStreams]) -> Result<Vec<u8>> {
     );
     out.extend_from_slice(&MAGIC);
     out.write_u16::<LittleEndian>(FORMAT_VERSION).expect(VEC_WRITE);
-    out.write_u16::<LittleEndian>(0).expect(VEC_WRITE);
+    out.write_u16::<LittleEndian>(header.flags).expect(VEC_WRITE);
     out.write_u32::<LittleEndian>(header_len as u32).expect(VEC_WRITE);
     out.write_u32::<LittleEndian>(header.width).expect(VEC_WRITE);
     out.write_u32::<LittleEndian>(header.height).expect(VEC_WRITE);
@@ -292,7 +302,7 @@ pub fn read(bytes: &[u8]) -> Result<(Header, Vec<TileStreams>)> {
     if crc32fast::hash(&bytes[..bytes.len() - 4]) != stored {
         return Err(corrupt("payload checksum mismatch"));
     }
-    if flags != 0 {
+    if flags & !KNOWN_FLAGS != 0 {
         return Err(corrupt(format!("unknown flags {flags:#06x}")));
     }
     let width = rd32(12);
@@ -348,6 +358,6 @@ pub fn read(bytes: &[u8]) -> Result<(Header, Vec<TileStreams>)> {
         streams.push(TileStreams { hyper: h, latent: l });
     }
     let header =
-        Header { width, height, channels, bit_depth, model_fingerprint, quality, tile_width, tile_height, tiles };
+        Header { flags, width, height, channels, bit_depth, model_fingerprint, quality, tile_width, tile_height, tiles };
     Ok((header, streams))
 }
