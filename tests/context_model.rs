@@ -175,7 +175,8 @@ fn a_context_model_file_has_its_own_format_tag_and_a_mismatch_is_refused() {
 #[test]
 fn the_container_flags_the_two_pass_latent_and_a_mismatch_or_unknown_flag_is_refused() {
     use kiln::container::{self, FLAG_CHECKERBOARD};
-    let ctx = Codec::new(ModelFile::from_bytes(&context_model(11).export(&Default::default()).unwrap()).unwrap()).unwrap();
+    let ctx =
+        Codec::new(ModelFile::from_bytes(&context_model(11).export(&Default::default()).unwrap()).unwrap()).unwrap();
     let plain = common::tiny_codec(11);
     let pic = synthetic_picture(64, 48, 3, 1);
     let (a, b) = (ctx.encode(&pic, 50.0).unwrap().bytes, plain.encode(&pic, 50.0).unwrap().bytes);

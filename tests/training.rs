@@ -53,6 +53,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         balance: 0.0,
         hidden_channels: None,
         context: None,
+        memory_budget: 1 << 30,
         stages: None,
         latent_warmup: 0,
         encoder_only: false,

@@ -105,6 +105,10 @@ pub struct TrainArgs {
     /// coding worse within 1000 steps (DEVELOPERS.md).
     #[arg(long, requires = "encoder_only")]
     rounded_rate: bool,
+    /// Most decoded training images held in memory, in MiB; a larger set is streamed from disk
+    /// (a pool within this budget, refreshed one image per step in an order shuffled from --seed).
+    #[arg(long, value_name = "MIB", default_value_t = 4096)]
+    memory_budget: u64,
     /// Print plain log lines instead of a progress bar.
     #[arg(long)]
     log: bool,
@@ -169,6 +173,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         rounded_rate: a.rounded_rate,
         progress: !a.log,
         force: a.force,
+        memory_budget: a.memory_budget.saturating_mul(1 << 20),
     };
     kiln::train::train(&opts)?;
     Ok(())

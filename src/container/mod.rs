@@ -357,7 +357,17 @@ pub fn read(bytes: &[u8]) -> Result<(Header, Vec<TileStreams>)> {
         pos += t.latent_bytes as usize;
         streams.push(TileStreams { hyper: h, latent: l });
     }
-    let header =
-        Header { flags, width, height, channels, bit_depth, model_fingerprint, quality, tile_width, tile_height, tiles };
+    let header = Header {
+        flags,
+        width,
+        height,
+        channels,
+        bit_depth,
+        model_fingerprint,
+        quality,
+        tile_width,
+        tile_height,
+        tiles,
+    };
     Ok((header, streams))
 }

@@ -128,6 +128,9 @@ pub struct TrainOptions {
     pub rounded_rate: bool,
     /// Replace an existing `out` or `checkpoint` of another run (a resumed run replaces its own).
     pub force: bool,
+    /// Most bytes of decoded training images held in memory; larger sets are streamed from
+    /// disk ([`data::ImageSet::load_within`]).
+    pub memory_budget: u64,
     /// Show a progress bar.
     pub progress: bool,
 }
@@ -380,6 +383,9 @@ pub fn validate_options(o: &TrainOptions) -> Result<()> {
     if o.steps == 0 {
         return bad("steps must be at least 1".into());
     }
+    if o.memory_budget < 1 << 20 {
+        return bad(format!("memory budget {} bytes is below 1 MiB", o.memory_budget));
+    }
     if !(in_range(o.lr, 0.0, 1.0) && o.lr > 0.0) {
         return bad(format!("learning rate {} is not in (0, 1]", o.lr));
     }
@@ -457,7 +463,7 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
                 .into(),
         ));
     }
-    let data = ImageSet::load(&o.images, o.patch)?;
+    let mut data = ImageSet::load_within(&o.images, o.patch, o.memory_budget, o.seed)?;
     if data.is_empty() {
         return Err(KilnError::InvalidArgument(format!(
             "no usable training images under {:?} ({} skipped)\nhint: give folders of images at least {} px on each side",
@@ -470,7 +476,17 @@ pub fn train(o: &TrainOptions) -> Result<TrainReport> {
         Some(d) => Some(ImageSet::load(std::slice::from_ref(d), HYPER_STRIDE_MAX)?),
         None => None,
     };
-    eprintln!("training on {} images ({} skipped)", data.len(), data.skipped.len());
+    if data.is_streamed() {
+        eprintln!(
+            "training on {} image files, streamed: {} decoded images ({} MiB) held at a time within the {} MiB budget",
+            data.files(),
+            data.len(),
+            data.held_bytes() >> 20,
+            o.memory_budget >> 20
+        );
+    } else {
+        eprintln!("training on {} images ({} skipped)", data.len(), data.skipped.len());
+    }
     let mut run = start(o)?;
     install_interrupt_handler();
     let config = run.model.config.clone();
