@@ -379,7 +379,16 @@ impl Codec {
     fn prior(&self, z_hat: &[i32], hz: usize, wz: usize, gains: &GainVectors) -> PriorParameters {
         let plane = hz * wz;
         let z: Vec<f32> = z_hat.iter().enumerate().map(|(i, &v)| v as f32 * gains.z_inv[i / plane]).collect();
-        self.hyper_fixed.forward(&z, hz, wz, self.simd)
+        let mut prior = self.hyper_fixed.forward(&z, hz, wz, self.simd);
+        if let Some((mu, ls)) = &gains.hyper {
+            // One f32 multiply or add per element: the same bits everywhere.
+            let latent_plane = prior.height * prior.width;
+            for (i, (m, l)) in prior.means.iter_mut().zip(prior.log_scales.iter_mut()).enumerate() {
+                *m *= mu[i / latent_plane];
+                *l += ls[i / latent_plane];
+            }
+        }
+        prior
     }
 
     /// The rate the model's continuous likelihoods assign to the values [`Codec::encode`] codes

@@ -53,6 +53,7 @@ fn options(dir: &Path, out: PathBuf, steps: u64) -> TrainOptions {
         balance: 0.0,
         hidden_channels: None,
         context: None,
+        hyper_gains: false,
         memory_budget: 1 << 30,
         stages: None,
         latent_warmup: 0,
@@ -413,4 +414,33 @@ fn exporting_the_same_weights_gives_the_same_bytes() {
     }
     let file = kiln::ModelFile::from_bytes(&a).unwrap();
     assert_eq!(file.model.config, kiln::ModelConfig::tiny());
+}
+
+#[test]
+fn resuming_with_a_context_and_hyper_gains_adds_them_and_keeps_training() {
+    let tmp = workspace();
+    let out = tmp.path().join("m.safetensors");
+    let mut o = options(tmp.path(), out.clone(), 8);
+    train(&o).unwrap();
+    o.steps = 12;
+    o.resume = Some(out.with_extension("ckpt"));
+    o.context = Some(kiln::model::context::ContextKind::Checkerboard);
+    o.hyper_gains = true;
+    train(&o).unwrap();
+    let after = ModelFile::load(Some(&out)).unwrap();
+    assert!(after.model.ctx.is_some() && after.model.config.hyper_gains);
+    assert_eq!(after.training.steps, 12);
+    // Trained for four steps, the context's output layer and the hyper gains have moved from zero.
+    let vars: std::collections::HashMap<String, candle_core::Var> = after.model.named_vars().into_iter().collect();
+    for name in ["ctx.2.weight", "gain.hs_mu", "gain.hs_ls"] {
+        let v = vars[name].as_tensor().abs().unwrap().max_all().unwrap().to_scalar::<f32>().unwrap();
+        assert!(v > 0.0, "{name} did not train");
+    }
+    // Such a model's latent cannot grow; a second context is refused.
+    o.latent_channels = Some(after.model.config.m + 2);
+    assert!(train(&o).unwrap_err().to_string().contains("cannot grow"));
+    let codec = Codec::new(after).unwrap();
+    let pic = synthetic_picture(96, 64, 3, 5);
+    let dec = codec.decode(&codec.encode(&pic, 50.0).unwrap().bytes).unwrap();
+    assert_eq!((dec.width, dec.height), (96, 64));
 }

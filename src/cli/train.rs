@@ -90,6 +90,11 @@ pub struct TrainArgs {
     /// that starts out coding exactly as before.
     #[arg(long, value_name = "KIND", value_parser = parse_context)]
     context: Option<kiln::model::context::ContextKind>,
+    /// Tell the hyper-synthesis the quality: per-anchor gains on its predicted means and
+    /// scales. With --init or --resume a model without them gets them at zero (it starts out
+    /// coding exactly as before).
+    #[arg(long)]
+    hyper_gains: bool,
     /// With --latent-channels: phase the new channels' bits into the loss over this many steps
     /// (not counted for the first half, then rising linearly), so that the synthesis learns to
     /// use them before the rate pulls them to zero; 0 counts them fully at once.
@@ -168,6 +173,7 @@ pub fn train(a: TrainArgs) -> anyhow::Result<()> {
         hidden_channels: a.hidden_channels,
         stages: a.stages,
         context: a.context,
+        hyper_gains: a.hyper_gains,
         latent_warmup: a.latent_warmup,
         encoder_only: a.encoder_only,
         rounded_rate: a.rounded_rate,

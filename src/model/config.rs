@@ -37,6 +37,10 @@ pub struct ModelConfig {
     /// model without one does not write it.
     #[serde(default, skip_serializing_if = "ContextKind::is_none")]
     pub context: ContextKind,
+    /// Whether the hyper-synthesis is told the quality through per-anchor gains on its output
+    /// ([`super::gain::GainUnits`]). Model files without the field have none.
+    #[serde(default, skip_serializing_if = "std::ops::Not::not")]
+    pub hyper_gains: bool,
 }
 
 fn four_stages() -> usize {
@@ -65,6 +69,7 @@ impl Default for ModelConfig {
             lambdas: vec![0.0025, 0.005, 0.01, 0.02, 0.04, 0.08],
             stages: 4,
             context: ContextKind::None,
+            hyper_gains: false,
         }
     }
 }
@@ -91,6 +96,7 @@ impl ModelConfig {
             lambdas: vec![0.005, 0.02, 0.08],
             stages: 4,
             context: ContextKind::None,
+            hyper_gains: false,
         }
     }
 
@@ -122,9 +128,9 @@ impl ModelConfig {
     }
 
     /// The model-file format tag for this configuration ([`super::MODEL_FORMAT`], or
-    /// [`super::MODEL_FORMAT_CONTEXT`] with a context model).
+    /// [`super::MODEL_FORMAT_CONTEXT`] with a context model or hyper gains).
     pub fn format_tag(&self) -> &'static str {
-        if self.context.is_none() { super::MODEL_FORMAT } else { super::MODEL_FORMAT_CONTEXT }
+        if self.context.is_none() && !self.hyper_gains { super::MODEL_FORMAT } else { super::MODEL_FORMAT_CONTEXT }
     }
 
     /// Downsampling factor of the analysis transform: `2^stages` (16 for four stages).

@@ -14,7 +14,10 @@ use candle_nn::{Init, VarBuilder};
 
 use super::config::ModelConfig;
 
-/// The four gain tables of a model.
+/// The gain tables of a model: the four above, and with [`ModelConfig::hyper_gains`] two more,
+/// `gain.hs_mu` and `gain.hs_ls` `(L, M)`, that tell the hyper-synthesis the quality: its
+/// predicted means are multiplied by `exp(hs_mu)` and its log-scales shifted by `hs_ls`
+/// (interpolated like the others). They start at zero, i.e. as if absent.
 #[derive(Debug, Clone)]
 pub struct GainUnits {
     /// Log-gains applied to `y` before rounding, `(L, M)`.
@@ -25,6 +28,9 @@ pub struct GainUnits {
     pub z: Tensor,
     /// Log-gains applied to `ẑ` before hyper-synthesis, `(L, Nz)`.
     pub z_inv: Tensor,
+    /// Log-multipliers of the hyper-synthesis' means and shifts of its log-scales, `(L, M)`
+    /// each, when the model has them.
+    pub hyper: Option<(Tensor, Tensor)>,
 }
 
 /// Gain vectors for one quality, evaluated on the CPU.
@@ -38,6 +44,9 @@ pub struct GainVectors {
     pub z: Vec<f32>,
     /// Multiplies `ẑ` (length Nz).
     pub z_inv: Vec<f32>,
+    /// Multiplies the hyper-synthesis' means and is added to its log-scales (length M each),
+    /// when the model has hyper gains.
+    pub hyper: Option<(Vec<f32>, Vec<f32>)>,
 }
 
 impl GainUnits {
@@ -49,33 +58,60 @@ impl GainUnits {
             y_inv: vb.get_with_hints((l, c.m), "y_inv", Init::Const(0.0))?,
             z: vb.get_with_hints((l, c.nz), "z", Init::Const(0.0))?,
             z_inv: vb.get_with_hints((l, c.nz), "z_inv", Init::Const(0.0))?,
+            hyper: if c.hyper_gains {
+                Some((
+                    vb.get_with_hints((l, c.m), "hs_mu", Init::Const(0.0))?,
+                    vb.get_with_hints((l, c.m), "hs_ls", Init::Const(0.0))?,
+                ))
+            } else {
+                None
+            },
         })
     }
 
     /// Gain vectors at anchor position `(i, l)` (see [`ModelConfig::anchor_position`]).
     pub fn at(&self, i: usize, l: f32) -> Result<GainVectors> {
-        let row = |t: &Tensor| -> Result<Vec<f32>> {
+        let mix = |t: &Tensor| -> Result<Vec<f32>> {
             let a = t.get(i)?.to_vec1::<f32>()?;
             let b = t.get(i + 1)?.to_vec1::<f32>()?;
-            Ok(a.iter().zip(&b).map(|(a, b)| libm::expf(a * (1.0 - l) + b * l)).collect())
+            Ok(a.iter().zip(&b).map(|(a, b)| a * (1.0 - l) + b * l).collect())
         };
-        Ok(GainVectors { y: row(&self.y)?, y_inv: row(&self.y_inv)?, z: row(&self.z)?, z_inv: row(&self.z_inv)? })
+        let row = |t: &Tensor| -> Result<Vec<f32>> { Ok(mix(t)?.into_iter().map(libm::expf).collect()) };
+        let hyper = match &self.hyper {
+            Some((mu, ls)) => Some((row(mu)?, mix(ls)?)),
+            None => None,
+        };
+        Ok(GainVectors {
+            y: row(&self.y)?,
+            y_inv: row(&self.y_inv)?,
+            z: row(&self.z)?,
+            z_inv: row(&self.z_inv)?,
+            hyper,
+        })
     }
 
     /// Per-sample gains for training: `index` `(B,)` u32 anchor indices, `weight` `(B,)` f32
     /// interpolation weights. Returns a `(B, C, 1, 1)` tensor of gains from `table`.
     pub fn batch(table: &Tensor, index: &Tensor, weight: &Tensor) -> Result<Tensor> {
+        Self::batch_log(table, index, weight)?.exp()
+    }
+
+    /// Like [`GainUnits::batch`], the interpolated table values themselves (not their `exp`).
+    pub fn batch_log(table: &Tensor, index: &Tensor, weight: &Tensor) -> Result<Tensor> {
         let lo = table.index_select(index, 0)?;
         let hi = table.index_select(&(index + 1.0)?.to_dtype(candle_core::DType::U32)?, 0)?;
         let w = weight.unsqueeze(1)?;
         let lg = (lo.broadcast_mul(&(1.0 - &w)?)? + hi.broadcast_mul(&w)?)?;
         let (b, c) = lg.dims2()?;
-        lg.exp()?.reshape((b, c, 1, 1))
+        lg.reshape((b, c, 1, 1))
     }
 }
 
-/// Names of the four gain tables in a model's weights.
+/// Names of the four gain tables every model has.
 pub const GAIN_TABLES: [&str; 4] = ["gain.y", "gain.y_inv", "gain.z", "gain.z_inv"];
+
+/// Names of the hyper-gain tables of a model with [`ModelConfig::hyper_gains`].
+pub const HYPER_GAIN_TABLES: [&str; 2] = ["gain.hs_mu", "gain.hs_ls"];
 
 /// Re-targets log-gain tables `(L_old, C)` trained at anchors `old` to new anchors `new`.
 ///

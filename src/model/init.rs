@@ -28,6 +28,8 @@ pub fn initialize(varmap: &VarMap, lambdas: &[f64], seed: u64) -> Result<()> {
         let dims = var.dims().to_vec();
         let n: usize = dims.iter().product();
         let values: Vec<f32> = match name.strip_prefix("gain.") {
+            // Hyper gains start neutral: the hyper-synthesis predicts as it would without them.
+            Some(kind) if kind.starts_with("hs_") => vec![0.0; n],
             Some(kind) => initial_gains(kind, &dims, lambdas),
             None => initial_values(name, &dims, n, &mut rng),
         };

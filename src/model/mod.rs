@@ -40,9 +40,9 @@ use synthesis::{HyperSynthesis, Synthesis};
 /// model existed).
 pub const MODEL_FORMAT: &str = "kiln-model-1";
 
-/// Format tag of model files with a context model ([`context`]). A new tag, so that a Kiln
-/// that predates context models refuses such a file instead of decoding with half its
-/// parameters.
+/// Format tag of model files with a context model ([`context`]) or hyper gains
+/// ([`ModelConfig::hyper_gains`]). A new tag, so that a Kiln that predates them refuses such a
+/// file instead of decoding with part of its parameters.
 pub const MODEL_FORMAT_CONTEXT: &str = "kiln-model-2";
 
 pub use shipped::{DEFAULT_MODEL_BYTES, ShippedModel};
@@ -276,6 +276,13 @@ impl Model {
         let lik_z = self.prior.likelihood(&z_rate)?.clamp(LIKELIHOOD_FLOOR, 1.0)?;
         let z_hat = z_rounded.broadcast_mul(&GainUnits::batch(&g.z_inv, anchor, weight)?)?;
         let (mu, log_scale) = self.h_s.forward_split(&z_hat)?;
+        let (mu, log_scale) = match &g.hyper {
+            None => (mu, log_scale),
+            Some((hs_mu, hs_ls)) => (
+                mu.broadcast_mul(&GainUnits::batch(hs_mu, anchor, weight)?)?,
+                log_scale.broadcast_add(&GainUnits::batch_log(hs_ls, anchor, weight)?)?,
+            ),
+        };
         let (mu, log_scale) = match &self.ctx {
             None => (mu, log_scale),
             Some(ctx) => {
@@ -515,8 +522,8 @@ impl ModelFile {
             .map_err(|e| KilnError::BadModel(format!("kiln.config: {e}")))?;
         if tag != Some(config.format_tag()) {
             return Err(KilnError::BadModel(format!(
-                "format tag {tag:?} does not match the configuration (context model {:?})",
-                config.context
+                "format tag {tag:?} does not match the configuration (context model {:?}, hyper gains {})",
+                config.context, config.hyper_gains
             )));
         }
         let training: TrainingSummary =

@@ -29,7 +29,7 @@ use crate::image_io::write_atomic;
 use crate::metrics::psnr;
 use crate::model::config::HYPER_STRIDE_MAX;
 use crate::model::context::ContextKind;
-use crate::model::gain::{GAIN_TABLES, retarget_rows};
+use crate::model::gain::{GAIN_TABLES, HYPER_GAIN_TABLES, retarget_rows};
 use crate::model::{Model, ModelConfig, ModelFile, TrainingSummary, hex_prefix, is_encoder_weight};
 use checkpoint::{CheckpointMeta, LatentWarmup};
 use data::{ImageSet, list_images};
@@ -105,6 +105,10 @@ pub struct TrainOptions {
     /// model without one is given one whose output layer is zero (it starts out coding exactly
     /// as before). `None` keeps the model's own.
     pub context: Option<ContextKind>,
+    /// Give the hyper-synthesis per-anchor gains ([`ModelConfig::hyper_gains`]). For a new model
+    /// it sets the configuration's; with `init` or `resume` a model without them gets them at
+    /// zero (it starts out coding exactly as before).
+    pub hyper_gains: bool,
     /// Steps over which a grown latent's new channels' bits are phased into the loss
     /// ([`LatentWarmup`]: not at all for the first half, then linearly); 0 counts them fully
     /// from the start.
@@ -204,7 +208,9 @@ struct Run {
 /// Re-targets the gain tables in `tensors` from anchors `old` to `new`. Adam moments of the gain
 /// tables (when present) keep the rows of anchors that stay and start from zero for new ones.
 fn retarget_gains(tensors: &mut HashMap<String, Tensor>, old: &[f64], new: &[f64]) -> Result<()> {
-    for name in GAIN_TABLES {
+    let present: Vec<&str> =
+        GAIN_TABLES.iter().chain(HYPER_GAIN_TABLES.iter().filter(|n| tensors.contains_key(**n))).copied().collect();
+    for name in present {
         let t = tensors.get(name).ok_or_else(|| KilnError::BadModel(format!("missing weight {name}")))?;
         let t = retarget_rows(t, old, new)?;
         tensors.insert(name.to_string(), t);
@@ -236,10 +242,10 @@ fn adapt(
     let mut changed = false;
     let mut warmup = None;
     if let Some(m) = o.latent_channels.filter(|&m| m != config.m) {
-        if !config.context.is_none() {
+        if !config.context.is_none() || config.hyper_gains {
             return Err(KilnError::InvalidArgument(format!(
-                "--latent-channels {m}: the latent of a model with a context model cannot grow (its context layers are sized by it)\n\
-                 hint: grow the latent of a model without one, then add the context with --context"
+                "--latent-channels {m}: the latent of a model with a context model or hyper gains cannot grow (their layers are sized by it)\n\
+                 hint: grow the latent of a model without them, then add them with --context or --hyper-gains"
             )));
         }
         tensors.extend(widen::widen_latent(tensors, config, m, o.seed)?);
@@ -282,6 +288,15 @@ fn adapt(
         }
         eprintln!("context model {kind:?} added (its output layer starts at zero)");
         config.context = kind;
+        changed = true;
+    }
+    if o.hyper_gains && !config.hyper_gains {
+        let rows = config.anchors();
+        for name in HYPER_GAIN_TABLES {
+            tensors.insert(name.to_string(), Tensor::zeros((rows, config.m), candle_core::DType::F32, &Device::Cpu)?);
+        }
+        eprintln!("hyper gains added (at zero: the hyper-synthesis predicts as before until trained)");
+        config.hyper_gains = true;
         changed = true;
     }
     if let Some(new) = o.lambdas.as_ref().filter(|l| **l != config.lambdas) {
@@ -338,6 +353,7 @@ fn start(o: &TrainOptions) -> Result<Run> {
             if let Some(k) = o.context {
                 c.context = k;
             }
+            c.hyper_gains |= o.hyper_gains;
             (Model::new(c, o.seed)?, None)
         }
         Init::FineTune(p) => {
