@@ -140,6 +140,15 @@ fn silence(codec: *mut opj::opj_codec_t) {
     }
 }
 
+/// Takes ownership of a codec OpenJPEG just created (`what`: for the error), silenced.
+fn new_codec(codec: *mut opj::opj_codec_t, what: &str) -> Result<Guard<c_void>> {
+    if codec.is_null() {
+        return Err(err(format!("cannot create the {what}")));
+    }
+    silence(codec);
+    Ok(Guard { ptr: codec as *mut c_void, free: destroy_codec })
+}
+
 /// Encodes `pic` (8-bit grey or RGB) as a J2K codestream.
 pub fn encode_jpeg2000(pic: &Picture, mode: Jpeg2000Mode) -> Result<Vec<u8>> {
     let (w, h, c) = (pic.width, pic.height, pic.channels as usize);
@@ -192,13 +201,8 @@ pub fn encode_jpeg2000(pic: &Picture, mode: Jpeg2000Mode) -> Result<Vec<u8>> {
     {
         // SAFETY: codec and stream are live for this scope and freed by their guards; `out`
         // outlives the stream.
-        let codec = unsafe { opj::opj_create_compress(opj::CODEC_FORMAT::OPJ_CODEC_J2K) };
-        if codec.is_null() {
-            return Err(err("cannot create the encoder"));
-        }
-        let codec = Guard { ptr: codec as *mut c_void, free: destroy_codec };
+        let codec = new_codec(unsafe { opj::opj_create_compress(opj::CODEC_FORMAT::OPJ_CODEC_J2K) }, "encoder")?;
         let cp = codec.ptr as *mut opj::opj_codec_t;
-        silence(cp);
         let s = stream(&mut out, false)?;
         let sp = s.ptr as *mut opj::opj_stream_t;
         let ok = unsafe {
@@ -218,13 +222,8 @@ pub fn encode_jpeg2000(pic: &Picture, mode: Jpeg2000Mode) -> Result<Vec<u8>> {
 pub fn decode_jpeg2000(bytes: &[u8], channels: u8) -> Result<Picture> {
     let mut input = Buffer { data: bytes.to_vec(), pos: 0 };
     // SAFETY: as in the encoder: every object has a guard, `input` outlives the stream.
-    let codec = unsafe { opj::opj_create_decompress(opj::CODEC_FORMAT::OPJ_CODEC_J2K) };
-    if codec.is_null() {
-        return Err(err("cannot create the decoder"));
-    }
-    let codec = Guard { ptr: codec as *mut c_void, free: destroy_codec };
+    let codec = new_codec(unsafe { opj::opj_create_decompress(opj::CODEC_FORMAT::OPJ_CODEC_J2K) }, "decoder")?;
     let cp = codec.ptr as *mut opj::opj_codec_t;
-    silence(cp);
     let mut dparams: opj::opj_dparameters_t = unsafe { std::mem::zeroed() };
     unsafe { opj::opj_set_default_decoder_parameters(&mut dparams) };
     if unsafe { opj::opj_setup_decoder(cp, &mut dparams) } == 0 {
